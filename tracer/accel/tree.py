@@ -1,0 +1,49 @@
+"""The flat form every acceleration structure takes, so one set of kernels can trace through any of them.
+
+A structure is a `Tree`: a few contiguous arrays linked by index. Node records are 8 words of 32 bits;
+`nodes_f` and `nodes_i` are two views of the same memory (float32 and int32), so a node's box and its
+links sit in one 32-byte record. What the words mean depends on `kind`:
+
+- BVH (kind 1), depth-first order, left child = node + 1:
+  f[0:3] box lo, f[3:6] box hi, i[6] = right child (inner) or first reference (leaf), i[7] = count of
+  references (0 = inner node).
+- kd-tree (kind 2): laid out by `tracer.accel.kdtree` (see its docstring).
+- brute (kind 0): no nodes; one leaf holding every triangle.
+
+`refs[k]` is the scene triangle id of reference k; `leaf_tris[k]` holds that triangle's vertices
+(v0, v1, v2 as 9 float32), copied in reference order so a leaf reads contiguous memory. A kd-tree may
+reference one triangle several times.
+"""
+from typing import NamedTuple
+
+import numpy as np
+
+BRUTE, BVH, KDTREE = 0, 1, 2
+STACK_SIZE = 128        # entries of the explicit traversal stack (a tree deeper than this is refused)
+
+
+class Tree(NamedTuple):
+    kind: int                   # BRUTE, BVH or KDTREE
+    nodes_f: np.ndarray         # (N, 8) float32 view of the node records
+    nodes_i: np.ndarray         # (N, 8) int32 view of the same memory
+    refs: np.ndarray            # (R,) int32 triangle id of each reference
+    leaf_tris: np.ndarray       # (R, 9) float32 vertices of each reference's triangle
+    bounds: np.ndarray          # (6,) float32 lo, hi of the whole scene
+
+
+def node_records(count: int) -> tuple[np.ndarray, np.ndarray]:
+    """Allocate `count` zeroed node records and return their (float32, int32) views."""
+    raw = np.zeros((max(count, 1), 8), dtype=np.int32)
+    return raw.view(np.float32), raw
+
+
+def leaf_triangles(vertices: np.ndarray, faces: np.ndarray, refs: np.ndarray) -> np.ndarray:
+    """(R, 9) float32 vertices of the referenced triangles, in reference order."""
+    tri = vertices[faces[refs]].astype(np.float32)     # (R, 3, 3)
+    return np.ascontiguousarray(tri.reshape(-1, 9))
+
+
+def scene_bounds(vertices: np.ndarray) -> np.ndarray:
+    if len(vertices) == 0:
+        return np.zeros(6, dtype=np.float32)
+    return np.concatenate([vertices.min(axis=0), vertices.max(axis=0)]).astype(np.float32)

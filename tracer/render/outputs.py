@@ -1,0 +1,54 @@
+"""Everything `tracer render` writes for one structure: EXR, display PNG, cost heat maps, statistics.
+
+NAME is the scene file's stem, TAG the structure SPEC with ":" replaced by "-" (INTERFACE.md).
+"""
+from pathlib import Path
+
+import numpy as np
+
+from tracer.diagnostics.heatmap import write_heatmaps
+from tracer.io.exr import write_exr
+from tracer.io.png import write_png
+from tracer.io.stats_json import write_json
+from tracer.render.driver import Checkpoint, RenderResult
+from tracer.tonemap import display_image
+
+HEAT_LABELS = {"nodes": "nodes visited per sample (all rays of the path)",
+               "tris": "triangles tested per sample (all rays of the path)"}
+
+
+def output_stem(out_dir, scene_name: str, spec: str) -> Path:
+    return Path(out_dir) / f"{scene_name}-{spec.replace(':', '-')}"
+
+
+def checkpoint_path(stem: Path) -> Path:
+    return stem.with_name(stem.name + ".checkpoint.npz")
+
+
+def write_checkpoint(stem: Path, checkpoint: Checkpoint, fingerprint: str) -> Path:
+    """Save the sums of the whole passes done, for `--resume` (atomically)."""
+    path = checkpoint_path(stem)
+    tmp = path.with_name(path.name + ".tmp.npz")
+    np.savez(tmp, sums=checkpoint.sums, samples_done=checkpoint.samples_done, hist=checkpoint.hist,
+             counters=checkpoint.counters, fingerprint=fingerprint)
+    tmp.replace(path)
+    return path
+
+
+def write_render_outputs(result: RenderResult, out_dir, scene_name: str, spec: str,
+                         log_heatmap: bool = False) -> list[Path]:
+    """Write NAME-TAG.exr, .png, -nodes.png, -tris.png and .json into out_dir; return the paths."""
+    stem = output_stem(out_dir, scene_name, spec)
+    stem.parent.mkdir(parents=True, exist_ok=True)
+    stats = result.stats
+    header = {"tracer_samples": int(result.checkpoint.samples_done), "tracer_accel": spec,
+              "tracer_scene": str(stats["scene"])}
+    exr = write_exr(stem.with_suffix(".exr"), result.channels, header)
+    png = write_png(stem.with_suffix(".png"), display_image(result.radiance))
+    heat = []
+    for which in ("nodes", "tris"):
+        heat.append(Path(write_heatmaps(f"{stem}-{which}.png", [(f"{scene_name} | {spec}",
+                                        result.channels[f"cost.{which}"])], HEAT_LABELS[which],
+                                        log=log_heatmap)))
+    js = write_json(stem.with_suffix(".json"), stats)
+    return [exr, png, *heat, js]
