@@ -74,12 +74,13 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
            height: int | None = None, bounces: int | None = None, seed: int | None = None,
            threads: int | None = None, leaf_size: int = 4, progress: bool = False,
            should_stop: Callable[[], bool] | None = None, resume: Checkpoint | None = None,
-           time_limit: float | None = None) -> RenderResult:
+           time_limit: float | None = None, clamp: float | None = None) -> RenderResult:
     """Path-trace `scene` through the structure `accel` (a SPEC such as "bvh:median", or a built Accel).
 
     Arguments left None take the scene's [render] values. `should_stop` is polled between kernel calls
     (Ctrl-C); `resume` (a Checkpoint) continues an earlier render; `time_limit` (seconds) stops
-    after the last whole pass that fits.
+    after the last whole pass that fits; `clamp` caps each indirect contribution's largest channel
+    (biased; off by default).
     """
     settings = resolve_settings(scene, samples=samples, width=width, height=height, bounces=bounces,
                                 seed=seed)
@@ -110,7 +111,8 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     if progress and not _kernels_cached():
         print("compiling kernels… (first run only)", file=sys.stderr, flush=True)
     # Warm-up on one pixel: compiles or loads the kernels outside the timed loop.
-    kern.render_rows(accel.tree, geo, cam, w, h, 0, 1, key, 0, 0, np.zeros((1, w, kern.N_CHANNELS),
+    clamp = float(clamp or 0.0)
+    kern.render_rows(accel.tree, geo, cam, w, h, 0, 1, key, 0, 0, clamp, np.zeros((1, w, kern.N_CHANNELS),
                      np.float32), hist.copy(), counters.copy())
     interrupted = False
     start = time.perf_counter()
@@ -126,7 +128,7 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
                         break
                     row1 = min(h, row0 + band)
                     kern.render_rows(accel.tree, geo, cam, w, h, row0, row1, key, sample, settings.bounces,
-                                     pass_buf, hist, counters)
+                                     clamp, pass_buf, hist, counters)
                     bar.update(row1 - row0)
                     seconds = time.perf_counter() - start
                     bar.set_postfix_str(f"sample {sample + 1}/{settings.samples}, "
@@ -169,6 +171,7 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
             "rays_shadow": int(total[kern.K_SHADOW]),
             "mrays_per_s": rays_session / seconds / 1e6 if seconds > 0 else 0.0,
             "nonfinite_samples": int(total[kern.K_NONFINITE]), "interrupted": interrupted,
+            "clamp": clamp if clamp > 0 else None,
         },
         "cost": {
             "nodes_per_ray": {"mean": node_sum / max(rays, 1),

@@ -16,6 +16,7 @@ class KernelScene(NamedTuple):
     emit_cdf: np.ndarray         # (E,) float64 cumulative choice probability (last = 1)
     emit_vertices: np.ndarray    # (E, 9) float64 v0, v1, v2
     emit_pdf_area: np.ndarray    # (E,) float64 p(choose triangle) / its area
+    tri_light_pdf: np.ndarray    # (F,) float64 the same per scene triangle (0 if never sampled), for MIS
     environment: np.ndarray      # (3,) float64
 
 
@@ -45,6 +46,8 @@ def kernel_scene(scene: Scene) -> KernelScene:
     cdf = np.cumsum(select)
     if len(cdf):
         cdf[-1] = 1.0
+    tri_light_pdf = np.zeros(len(faces))
+    tri_light_pdf[emit] = select / area[emit]
     return KernelScene(
         tri_normal=np.ascontiguousarray(normal),
         material_of=np.ascontiguousarray(scene.material_of, np.int32),
@@ -53,5 +56,6 @@ def kernel_scene(scene: Scene) -> KernelScene:
         emit_cdf=cdf.astype(np.float64),
         emit_vertices=np.ascontiguousarray(vertices[faces[emit]].reshape(-1, 9)),
         emit_pdf_area=(select / area[emit]).astype(np.float64),
+        tri_light_pdf=tri_light_pdf,
         environment=np.asarray(scene.environment, np.float64).reshape(3),
     )
