@@ -64,6 +64,8 @@ def _render_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--leaf-size", type=_bounded_int("--leaf-size", 1, 255), default=4,
                         help="most triangles per leaf the builders aim for (default 4)")
     parser.add_argument("--log-heatmap", action="store_true", help="log colour scale for the cost heat maps")
+    parser.add_argument("--clamp", type=_positive_float("--clamp"), metavar="L",
+                        help="cap each indirect contribution's largest channel at L (biased; off by default)")
     parser.add_argument("--time-limit", type=_positive_float("--time-limit"), metavar="SECONDS",
                         help="render as many whole sample passes as fit, then save")
     parser.add_argument("--resume", action="store_true",
@@ -125,13 +127,13 @@ class _StopFlag:
         return self.raised
 
 
-def _fingerprint(scene, settings, spec: str, leaf_size: int) -> str:
+def _fingerprint(scene, settings, spec: str, leaf_size: int, clamp: float | None) -> str:
     """What a checkpoint must match to be resumed: geometry, materials, camera, settings but samples."""
     digest = hashlib.sha256()
     for array in (scene.vertices, scene.faces, scene.material_of, scene.material_params, scene.environment):
         digest.update(np.ascontiguousarray(array).tobytes())
     digest.update(repr((tuple(map(tuple, scene.camera[:3])), scene.camera[3:], settings._replace(samples=0),
-                        spec, leaf_size)).encode())
+                        spec, leaf_size, clamp)).encode())
     return digest.hexdigest()
 
 
@@ -154,12 +156,13 @@ def _render_one(scene, spec: str, args, stop: _StopFlag):
     settings = resolve_settings(scene, samples=args.samples, width=args.width, height=args.height,
                                 bounces=args.bounces, seed=args.seed)
     stem = output_stem(args.out, scene.name, spec)
-    fingerprint = _fingerprint(scene, settings, spec, args.leaf_size)
+    fingerprint = _fingerprint(scene, settings, spec, args.leaf_size, args.clamp)
     resume = _load_checkpoint(checkpoint_path(stem), fingerprint) if args.resume else None
     result = render(scene, accel=spec, samples=settings.samples, width=settings.width,
                     height=settings.height, bounces=settings.bounces, seed=settings.seed,
                     threads=args.threads, leaf_size=args.leaf_size, progress=not args.quiet,
-                    should_stop=stop, resume=resume, time_limit=args.time_limit)
+                    should_stop=stop, resume=resume, time_limit=args.time_limit,
+                    clamp=args.clamp)
     paths = write_render_outputs(result, args.out, scene.name, spec, log_heatmap=args.log_heatmap)
     if result.checkpoint.samples_done < settings.samples:
         paths.append(write_checkpoint(stem, result.checkpoint, fingerprint))
