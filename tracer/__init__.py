@@ -1,8 +1,12 @@
 """tracer: an offline CPU path tracer with diagnostics of its ray-tracing acceleration structures."""
-from tracer.accel import build_accel
-from tracer.render import render as _render
-from tracer.scene import load_scene
-from tracer.tonemap import tonemap
+from tracer import _kernel_cache
+
+_kernel_cache.configure()       # before any kernel module is imported
+
+from tracer.accel import build_accel  # noqa: E402
+from tracer.render import render as _render  # noqa: E402
+from tracer.scene import load_scene  # noqa: E402
+from tracer.tonemap import tonemap  # noqa: E402
 
 
 def render(scene, accel="bvh", **options):

@@ -17,11 +17,10 @@ EXIT_OK, EXIT_USAGE, EXIT_INTERRUPTED = 0, 2, 130
 
 
 class _Parser(argparse.ArgumentParser):
-    """argparse that reports errors on one line (after the usage line) with exit status 2."""
+    """argparse that reports errors on one line with exit status 2."""
 
     def error(self, message):
-        self.print_usage(sys.stderr)
-        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message} (see: {self.prog} --help)\n")
 
 
 def _bounded_int(name: str, low: int, high: int):
@@ -29,9 +28,9 @@ def _bounded_int(name: str, low: int, high: int):
         try:
             value = int(text)
         except ValueError:
-            raise argparse.ArgumentTypeError(f"{name} must be a whole number, got {text!r}") from None
+            raise argparse.ArgumentTypeError(f"must be a whole number, got {text!r}") from None
         if not low <= value <= high:
-            raise argparse.ArgumentTypeError(f"{name} must be in [{low}, {high}], got {value}")
+            raise argparse.ArgumentTypeError(f"must be in [{low}, {high}], got {value}")
         return value
     return parse
 
@@ -41,9 +40,9 @@ def _positive_float(name: str):
         try:
             value = float(text)
         except ValueError:
-            raise argparse.ArgumentTypeError(f"{name} must be a number, got {text!r}") from None
+            raise argparse.ArgumentTypeError(f"must be a number, got {text!r}") from None
         if not np.isfinite(value) or value <= 0:
-            raise argparse.ArgumentTypeError(f"{name} must be a positive number, got {text}")
+            raise argparse.ArgumentTypeError(f"must be a positive number, got {text}")
         return value
     return parse
 
@@ -52,7 +51,8 @@ def _render_options(parser: argparse.ArgumentParser) -> None:
     from tracer.scene import MAX_BOUNCES, MAX_IMAGE_SIDE, MAX_SAMPLES, MAX_SEED
     parser.add_argument("scene", help="scene description (TOML)")
     parser.add_argument("--samples", type=_bounded_int("--samples", 1, MAX_SAMPLES), help="samples per pixel")
-    parser.add_argument("--width", type=_bounded_int("--width", 1, MAX_IMAGE_SIDE), help="image width, pixels")
+    parser.add_argument("--width", type=_bounded_int("--width", 1, MAX_IMAGE_SIDE),
+                        help="image width, pixels")
     parser.add_argument("--height", type=_bounded_int("--height", 1, MAX_IMAGE_SIDE),
                         help="image height, pixels")
     parser.add_argument("--bounces", type=_bounded_int("--bounces", 0, MAX_BOUNCES),

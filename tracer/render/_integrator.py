@@ -119,7 +119,8 @@ def _bsdf_eval(kind, mat, ox, oy, oz, ix, iy, iz):
 @numba.njit(cache=True, error_model="numpy")
 def _shadow(tree, stack_i, stack_f, hist, counters, tid, sx, sy, sz, wx, wy, wz, t_max):
     """Any-hit ray for light sampling; returns (blocked, nodes, tris) and tallies it."""
-    blocked, nodes, tris = any_hit(tree, stack_i, stack_f, make_ray(sx, sy, sz, wx, wy, wz), np.float32(t_max))
+    ray = make_ray(sx, sy, sz, wx, wy, wz)
+    blocked, nodes, tris = any_hit(tree, stack_i, stack_f, ray, np.float32(t_max))
     _record_ray(hist, counters, tid, nodes, tris)
     counters[tid, K_SHADOW] += 1
     return blocked, nodes, tris
@@ -172,7 +173,8 @@ def _trace_path(tree, geo, cam, width, height, row, col, key, sample, max_bounce
             elif kind == GLASS:
                 out[CH_ALBEDO], out[CH_ALBEDO + 1], out[CH_ALBEDO + 2] = 1.0, 1.0, 1.0
             else:
-                out[CH_ALBEDO], out[CH_ALBEDO + 1], out[CH_ALBEDO + 2] = mat[M_COLOR], mat[M_COLOR + 1], mat[M_COLOR + 2]
+                for c in range(3):
+                    out[CH_ALBEDO + c] = mat[M_COLOR + c]
             out[CH_NORMAL], out[CH_NORMAL + 1], out[CH_NORMAL + 2] = nx, ny, nz
             out[CH_DEPTH] = t
         if front or mat[M_TWO_SIDED] > 0.5:
@@ -230,14 +232,15 @@ def _trace_path(tree, geo, cam, width, height, row, col, key, sample, max_bounce
                     fr, fg, fb, bsdf_pdf = _bsdf_eval(kind, mat, wox, woy, woz, ix, iy, iz)
                     if max(fr, fg, fb) > 0.0:
                         eps_l = OFFSET_SCALE * max(1.0, abs(qx), abs(qy), abs(qz))
-                        blocked, nodes, tris = _shadow(tree, stack_i, stack_f, hist, counters, tid, sx, sy, sz,
-                                                       wx, wy, wz, dist - 2.0 * eps_l)
+                        blocked, nodes, tris = _shadow(tree, stack_i, stack_f, hist, counters, tid,
+                                                       sx, sy, sz, wx, wy, wz, dist - 2.0 * eps_l)
                         nodes_sum += nodes
                         tris_sum += tris
                         if not blocked:
                             light_pdf = geo.emit_pdf_area[j] * dist2 / cos_l      # area -> solid angle
                             w = _power_heuristic(light_pdf, bsdf_pdf) / light_pdf
-                            er, eg, eb = _clamped(tr * fr * lmat[M_EMISSION] * w, tg * fg * lmat[M_EMISSION + 1] * w,
+                            er, eg, eb = _clamped(tr * fr * lmat[M_EMISSION] * w,
+                                                  tg * fg * lmat[M_EMISSION + 1] * w,
                                                   tb * fb * lmat[M_EMISSION + 2] * w, limit)
                             lr, lg, lb = lr + er, lg + eg, lb + eb
         if not delta and sample_env:
@@ -256,14 +259,15 @@ def _trace_path(tree, geo, cam, width, height, row, col, key, sample, max_bounce
                 if not blocked:
                     env_pdf = iz / math.pi
                     w = _power_heuristic(env_pdf, bsdf_pdf) / env_pdf
-                    er, eg, eb = _clamped(tr * fr * env_r * w, tg * fg * env_g * w, tb * fb * env_b * w, limit)
+                    er, eg, eb = _clamped(tr * fr * env_r * w, tg * fg * env_g * w, tb * fb * env_b * w,
+                                          limit)
                     lr, lg, lb = lr + er, lg + eg, lb + eb
         # BSDF sampling: the next direction, its weight f cos / pdf and pdf (0 for a delta lobe).
         transmit = False
         if kind == METAL:
             alpha = mat[M_ROUGHNESS] * mat[M_ROUGHNESS]
-            ix, iy, iz, wr, wg, wb, pdf = metal_sample(alpha, mat[M_COLOR], mat[M_COLOR + 1], mat[M_COLOR + 2],
-                                                       wox, woy, woz, g_bsdf[0], g_bsdf[1])
+            ix, iy, iz, wr, wg, wb, pdf = metal_sample(alpha, mat[M_COLOR], mat[M_COLOR + 1],
+                                                       mat[M_COLOR + 2], wox, woy, woz, g_bsdf[0], g_bsdf[1])
         elif kind == GLASS:
             eta = mat[M_IOR] if front else 1.0 / mat[M_IOR]      # n_transmitted / n_incident
             reflectance, cos_t = fresnel_dielectric(woz, eta)

@@ -36,7 +36,8 @@ def camera_params(camera: Camera, width: int, height: int) -> np.ndarray:
 
 @numba.njit(cache=True, error_model="numpy", inline="always")
 def _concentric_disk(u1, u2):
-    """Uniform point on the unit disk (Shirley & Chiu 1997, "A low distortion map between disk and square")."""
+    """Uniform point on the unit disk (Shirley & Chiu 1997, "A low distortion map between disk and
+    square", Journal of Graphics Tools 2(3))."""
     a, b = 2.0 * u1 - 1.0, 2.0 * u2 - 1.0
     if a == 0.0 and b == 0.0:
         return 0.0, 0.0

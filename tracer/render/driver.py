@@ -4,8 +4,6 @@ A pass traces one sample of every pixel into a pass buffer, which is added to th
 when the whole pass is done: an interrupted pass is dropped, so the sums always hold whole passes and a
 render resumed from them is the render that was never interrupted.
 """
-import glob
-import os
 import sys
 import time
 from collections.abc import Callable
@@ -15,11 +13,13 @@ import numba
 import numpy as np
 from tqdm import tqdm
 
+from tracer import _kernel_cache
 from tracer.accel import Accel, build_accel, parse_spec
 from tracer.render import _integrator as kern
 from tracer.render.camera import camera_params
 from tracer.render.geometry import kernel_scene
 from tracer.render.rng import seed_key
+from tracer.resources import check_fits
 from tracer.scene.types import RenderSettings, Scene
 
 PATHS_PER_CALL = 32768          # pixels per kernel call: short enough to stop promptly, long enough to scale
@@ -41,11 +41,6 @@ class RenderResult(NamedTuple):
     stats: dict                 # the statistics JSON (INTERFACE.md)
     checkpoint: Checkpoint      # to resume from
     interrupted: bool
-
-
-def _kernels_cached() -> bool:
-    folder = os.path.join(os.path.dirname(kern.__file__), "__pycache__")
-    return bool(glob.glob(os.path.join(folder, "_integrator.render_rows-*.nbi")))
 
 
 def _percentiles(hist: np.ndarray, maximum: int, total: int) -> dict:
@@ -84,6 +79,8 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     """
     settings = resolve_settings(scene, samples=samples, width=width, height=height, bounces=bounces,
                                 seed=seed)
+    check_fits(scene.path, accel.kind if isinstance(accel, Accel) else parse_spec(accel)[0],
+               0 if isinstance(accel, Accel) else scene.triangles, settings.width, settings.height)
     if not isinstance(accel, Accel):
         kind, build = parse_spec(accel)
         accel = build_accel(scene.vertices, scene.faces, kind=kind, build=build, leaf_size=leaf_size)
@@ -108,7 +105,7 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     hist_done, counters_done = hist.copy(), counters.copy()     # tallies of whole passes only
     pass_buf = np.zeros((h, w, kern.N_CHANNELS), np.float32)
     band = max(1, min(h, PATHS_PER_CALL // max(w, 1)))
-    if progress and not _kernels_cached():
+    if progress and not _kernel_cache.is_warm():
         print("compiling kernels… (first run only)", file=sys.stderr, flush=True)
     # Warm-up on one pixel: compiles or loads the kernels outside the timed loop.
     clamp = float(clamp or 0.0)
@@ -117,7 +114,7 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     interrupted = False
     start = time.perf_counter()
     bar = tqdm(total=(settings.samples - done) * h, disable=not progress, unit="row", file=sys.stderr,
-               desc=f"{accel.spec} {w}x{h}", leave=False, dynamic_ncols=True)
+               desc=f"{accel.spec} {w}x{h}", leave=False, dynamic_ncols=True, mininterval=0.5)
     try:
         previous_chunk = numba.set_parallel_chunksize(1)   # rows dealt out one at a time: both cores busy
         try:
@@ -130,9 +127,8 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
                     kern.render_rows(accel.tree, geo, cam, w, h, row0, row1, key, sample, settings.bounces,
                                      clamp, pass_buf, hist, counters)
                     bar.update(row1 - row0)
-                    seconds = time.perf_counter() - start
-                    bar.set_postfix_str(f"sample {sample + 1}/{settings.samples}, "
-                                        f"{counters[:, kern.K_RAYS].sum() / max(seconds, 1e-9) / 1e6:.2f} Mrays/s")
+                    rate = counters[:, kern.K_RAYS].sum() / max(time.perf_counter() - start, 1e-9) / 1e6
+                    bar.set_postfix_str(f"sample {sample + 1}/{settings.samples}, {rate:.2f} Mrays/s")
                 if interrupted:
                     break
                 sums += pass_buf
@@ -157,7 +153,8 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     rays = int(total[kern.K_RAYS])
     # Throughput counts every ray this call traced, partial pass included, over this call's time.
     rays_session = int(counters[:, kern.K_RAYS].sum()) - (int(resume.counters[kern.K_RAYS]) if resume else 0)
-    node_sum, tri_sum = float(sums[:, :, kern.CH_COST_NODES].sum()), float(sums[:, :, kern.CH_COST_TRIS].sum())
+    node_sum = float(sums[:, :, kern.CH_COST_NODES].sum())
+    tri_sum = float(sums[:, :, kern.CH_COST_TRIS].sum())
     hist_all = hist_done.sum(axis=0)
     stats = {
         "scene": scene.path,
