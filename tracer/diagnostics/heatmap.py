@@ -8,6 +8,7 @@ import os
 import tempfile
 
 import numpy as np
+from matplotlib import colormaps
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LogNorm, Normalize
 from matplotlib.figure import Figure
@@ -15,6 +16,7 @@ from matplotlib.figure import Figure
 SEQUENTIAL = "inferno"
 DIVERGING = "RdBu_r"
 DPI = 100
+NO_VALUE = "#808080"   # pixels without a value on the scale (non-finite; zero on a log scale)
 
 
 def value_range(images: list[np.ndarray], log: bool = False) -> tuple[float, float]:
@@ -52,6 +54,8 @@ def write_heatmaps(path: str, panels: list[tuple[str, np.ndarray]], label: str, 
         norm = LogNorm(max(low, 1e-12), high) if log else Normalize(low, high)
         cmap = SEQUENTIAL
         range_text = f"range {low:.4g} to {high:.4g}" + (", log scale" if log else "")
+        if log and any(np.any(im <= 0) for im in images):
+            range_text += ", grey: 0"  # a log axis has no place for 0
     h, w = images[0].shape
     n = len(images)
     scale = max(1.0, 300.0 / max(h, 1))         # tiny images are enlarged so the bar stays readable
@@ -63,7 +67,8 @@ def write_heatmaps(path: str, panels: list[tuple[str, np.ndarray]], label: str, 
         shown = np.where(np.isfinite(image), image, np.nan)
         if log:
             shown = np.where(shown > 0, shown, np.nan)
-        mappable = ax.imshow(shown, cmap=cmap, norm=norm, interpolation="nearest")
+        mappable = ax.imshow(shown, cmap=colormaps[cmap].with_extremes(bad=NO_VALUE), norm=norm,
+                             interpolation="nearest")
         ax.set_title(title, fontsize=9)
         ax.set_axis_off()
     bar = fig.colorbar(mappable, ax=list(axes), fraction=0.05 if n == 1 else 0.02, pad=0.02)
@@ -73,7 +78,7 @@ def write_heatmaps(path: str, panels: list[tuple[str, np.ndarray]], label: str, 
     fd, tmp = tempfile.mkstemp(suffix=".png", dir=folder)
     os.close(fd)
     try:
-        fig.savefig(tmp, dpi=DPI, format="png")
+        fig.savefig(tmp, dpi=DPI, format="png", bbox_inches="tight", pad_inches=0.1)  # keep the bar label
         os.replace(tmp, path)
     finally:
         if os.path.exists(tmp):

@@ -13,8 +13,12 @@ from tracer.io.stats_json import write_json
 from tracer.render.driver import Checkpoint, RenderResult
 from tracer.tonemap import display_image
 
-HEAT_LABELS = {"nodes": "nodes visited per sample (all rays of the path)",
-               "tris": "triangles tested per sample (all rays of the path)"}
+HEAT_MAPS = {  # file suffix: (EXR channel, colour-bar label)
+    "nodes": ("cost.nodes", "nodes visited per sample (all rays of the path)"),
+    "tris": ("cost.tris", "triangles tested per sample (all rays of the path)"),
+    "primary-nodes": ("primary.nodes", "nodes visited per sample (camera ray only)"),
+    "primary-tris": ("primary.tris", "triangles tested per sample (camera ray only)"),
+}
 
 
 def output_stem(out_dir, scene_name: str, spec: str) -> Path:
@@ -37,7 +41,8 @@ def write_checkpoint(stem: Path, checkpoint: Checkpoint, fingerprint: str) -> Pa
 
 def write_render_outputs(result: RenderResult, out_dir, scene_name: str, spec: str,
                          log_heatmap: bool = False) -> list[Path]:
-    """Write NAME-TAG.exr, .png, -nodes.png, -tris.png and .json into out_dir; return the paths."""
+    """Write NAME-TAG.exr, .png, -nodes.png, -tris.png, -primary-nodes.png, -primary-tris.png and .json
+    into out_dir; return the paths."""
     stem = output_stem(out_dir, scene_name, spec)
     stem.parent.mkdir(parents=True, exist_ok=True)
     stats = result.stats
@@ -46,9 +51,8 @@ def write_render_outputs(result: RenderResult, out_dir, scene_name: str, spec: s
     exr = write_exr(stem.with_suffix(".exr"), result.channels, header)
     png = write_png(stem.with_suffix(".png"), display_image(result.radiance))
     heat = []
-    for which in ("nodes", "tris"):
-        heat.append(Path(write_heatmaps(f"{stem}-{which}.png", [(f"{scene_name} | {spec}",
-                                        result.channels[f"cost.{which}"])], HEAT_LABELS[which],
-                                        log=log_heatmap)))
+    for suffix, (channel, label) in HEAT_MAPS.items():
+        heat.append(Path(write_heatmaps(f"{stem}-{suffix}.png", [(f"{scene_name} | {spec}",
+                                        result.channels[channel])], label, log=log_heatmap)))
     js = write_json(stem.with_suffix(".json"), stats)
     return [exr, png, *heat, js]
