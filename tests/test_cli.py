@@ -188,3 +188,12 @@ def test_resume_refuses_a_different_scene(scene_file, tmp_path):
 def test_python_module_entry_point_matches_console_script():
     result = _run(["--help"])
     assert result.returncode == 0 and "render" in result.stdout and "compare" in result.stdout
+
+
+def test_tonemap_of_the_rendered_exr_reproduces_the_preview(scene_file, tmp_path):
+    """Issue 4's round trip: `tracer tonemap` on the render's EXR gives the render's own preview PNG."""
+    import imageio.v3 as iio
+    out = tmp_path / "o"
+    assert main(["render", str(scene_file), "--out", str(out), "--quiet"]) == 0
+    assert main(["tonemap", str(out / "cube-room-bvh.exr"), "-o", str(tmp_path / "again.png")]) == 0
+    np.testing.assert_array_equal(iio.imread(out / "cube-room-bvh.png"), iio.imread(tmp_path / "again.png"))
