@@ -24,7 +24,9 @@ def mix64(z):
 
 def seed_key(seed: int) -> np.uint64:
     """The uint64 key of a user seed (any Python int)."""
-    return mix64(np.uint64(int(seed) & 0xFFFFFFFFFFFFFFFF) ^ np.uint64(0x5EED5EED5EED5EED))
+    # np.uint64 again: mix64 called from Python returns a Python int, and a key above 2**63 would make
+    # numba compile a second (int64-typed) kernel that later calls pick wrongly.
+    return np.uint64(mix64(np.uint64(int(seed) & 0xFFFFFFFFFFFFFFFF) ^ np.uint64(0x5EED5EED5EED5EED)))
 
 
 @numba.njit(cache=True, inline="always")
