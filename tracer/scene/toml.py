@@ -31,6 +31,30 @@ Defaults for omitted optional keys:
                    tangent (optional, where the first rim vertex lies) as for rect
     mesh           file required (relative to the scene file's folder)
 
+Extensions beyond INTERFACE.md: two procedural shapes (tracer/scene/procedural.py, where the methods
+are cited). Both are deterministic functions of their keys, `seed` included, and take the common
+keys (material, translate, rotate, scale; scale and rotation act about `center`):
+
+    terrain        a heightfield of fractal gradient noise (fBm) facing +Y, triangles counter-clockwise
+                   seen from above; center [0, 0, 0] (the middle of the base plane),
+                   size [10, 10] (extent along x, then z), resolution 64 (cells per side: one integer,
+                   or [nx, nz]; each in 1..8192; 2·nx·nz triangles, at most 2^23),
+                   height 1 (>= 0: the surface stays within center.y ± height; typical peaks reach
+                   about half of it), feature_size = the larger side / 4 (width of the largest hills;
+                   at least the larger side / 1e6), octaves 6 (1..16; each octave doubles the
+                   frequency), roughness 0.5 (in (0, 1]: amplitude ratio of successive octaves;
+                   higher is more rugged), seed 0 (0..2^63-1)
+    scatter        count copies of a small closed solid at uniform random centres inside a box;
+                   center [0, 0, 0] and size [1, 1, 1] (>= 0 each; 0 puts all centres in a plane) of
+                   that box, count 100 (at most 2^23 triangles in all), piece "sphere" ("sphere": an
+                   icosphere of subdivisions 1 (0..5; only with "sphere"), "tetrahedron" (regular),
+                   "box" (a cube); each with its vertices on the sphere of `radius`), radius 0.05,
+                   stretch [1, 1, 1] (each piece's own x, y, z scale before its rotation, e.g.
+                   [0.03, 1, 0.03] with piece "box" gives needles), rotation "random" ("random":
+                   uniform over all rotations, "about_y": a random turn about +Y, "none"),
+                   variation 0 (in [0, 1): each radius is multiplied by a uniform number in
+                   [1 - variation, 1]), seed 0
+
 Albedo and metal color are reflectances, so each channel must lie in [0, 1]; emission, radiance and
 environment only need to be >= 0 (and at most 1e30, as ior, to stay finite in float32). Scale must be
 positive (a mirroring scale would turn the front faces inward). Positions (camera, centres,
@@ -45,7 +69,7 @@ from pathlib import Path
 import numpy as np
 
 from tracer.errors import UserError, input_error
-from tracer.scene import shapes
+from tracer.scene import procedural, shapes
 from tracer.scene.mesh import read_mesh
 from tracer.scene.types import (
     M_COLOR,
@@ -70,6 +94,11 @@ MAX_COORDINATE = 1e15
 MAX_SUBDIVISIONS = 9              # 5.2 M triangles
 MAX_SEGMENTS = 1 << 20
 MAX_MATERIAL_VALUE = 1e30         # radiance and ior stay finite in the kernels' float32
+MAX_GENERATED_TRIANGLES = 1 << 23  # 8.4 M triangles from one terrain or scatter (~0.6 GB of arrays)
+MAX_TERRAIN_SIDE = 1 << 13        # cells along one side of a terrain
+MAX_OCTAVES = 16
+MAX_TERRAIN_DETAIL = 1e6          # largest-feature cells across a terrain, keeps noise input precise
+MAX_PIECE_SUBDIVISIONS = 5        # 20480 triangles per scatter piece
 
 TOP_LEVEL = ("render", "camera", "environment", "materials", "objects")
 RENDER_KEYS = ("width", "height", "samples", "bounces", "seed")
@@ -87,6 +116,9 @@ SHAPE_KEYS = {
     "sphere": ("center", "radius", "subdivisions"),
     "disk": ("center", "radius", "normal", "segments", "tangent"),
     "mesh": ("file",),
+    "terrain": ("center", "size", "resolution", "height", "feature_size", "octaves", "roughness", "seed"),
+    "scatter": ("center", "size", "count", "piece", "subdivisions", "radius", "stretch", "rotation",
+                "variation", "seed"),
 }
 _REQUIRED = object()
 _SHOWN_LENGTH = 60
@@ -335,6 +367,69 @@ def _plane_frame(table: _Table) -> tuple[np.ndarray, np.ndarray]:
     return normal, tangent
 
 
+def _resolution(table: _Table) -> tuple[int, int]:
+    """Terrain cells along x and z: one integer for both, or a list of two."""
+    value = table.raw("resolution", 64)
+    cells = [value, value] if type(value) is int else value
+    if not (isinstance(cells, list) and len(cells) == 2
+            and all(type(n) is int and 1 <= n <= MAX_TERRAIN_SIDE for n in cells)):
+        raise table.invalid("resolution", f"an integer in [1, {MAX_TERRAIN_SIDE}] or a list of 2 of them")
+    if 2 * cells[0] * cells[1] > MAX_GENERATED_TRIANGLES:
+        raise table.invalid("resolution", f"at most {MAX_GENERATED_TRIANGLES} triangles (2 per cell)")
+    return cells[0], cells[1]
+
+
+def _choice(table: _Table, key: str, default: str, choices: tuple[str, ...]) -> str:
+    value = table.text(key, default)
+    if value not in choices:
+        raise table.invalid(key, "one of " + ", ".join(_quoted(choice) for choice in choices))
+    return value
+
+
+def _terrain(table: _Table):
+    """The vertices and faces of a `terrain` object in its own frame (procedural.terrain)."""
+    size = table.vector("size", [10.0, 10.0], 2, lambda x: x > 0.0, "a list of 2 positive finite numbers")
+    resolution = _resolution(table)
+    larger_side = float(size.max())
+    feature_size = table.number("feature_size", larger_side / 4.0, lambda x: x > 0.0,
+                                "a positive finite number")
+    if larger_side / feature_size > MAX_TERRAIN_DETAIL:
+        raise table.invalid("feature_size", f"at least the larger side / {MAX_TERRAIN_DETAIL:g} "
+                                            f"= {larger_side / MAX_TERRAIN_DETAIL:g}")
+    return procedural.terrain(
+        size, resolution,
+        height=table.number("height", 1.0, lambda x: x >= 0.0, "a finite number >= 0"),
+        feature_size=feature_size,
+        octaves=table.integer("octaves", 6, 1, MAX_OCTAVES),
+        roughness=table.number("roughness", 0.5, lambda x: 0.0 < x <= 1.0, "a number in (0, 1]"),
+        seed=table.integer("seed", 0, 0, MAX_SEED),
+    )
+
+
+def _scatter(table: _Table):
+    """The vertices and faces of a `scatter` object in its own frame (procedural.scatter)."""
+    piece = _choice(table, "piece", "sphere", procedural.PIECES)
+    if "subdivisions" in table.data and piece != "sphere":
+        raise table.error("subdivisions", f'applies only to piece = "sphere", not to {_quoted(piece)}')
+    subdivisions = table.integer("subdivisions", 1, 0, MAX_PIECE_SUBDIVISIONS)
+    per_piece = procedural.piece_triangles(piece, subdivisions)
+    most = MAX_GENERATED_TRIANGLES // per_piece
+    count = table.integer("count", 100, 1, MAX_GENERATED_TRIANGLES)
+    if count > most:
+        raise table.invalid("count", f"at most {most} for {per_piece}-triangle pieces "
+                                     f"({MAX_GENERATED_TRIANGLES} triangles in all)")
+    return procedural.scatter(
+        table.vector("size", [1.0, 1.0, 1.0], 3, lambda x: x >= 0.0, "a list of 3 finite numbers >= 0"),
+        count, piece, subdivisions,
+        radius=table.number("radius", 0.05, lambda x: x > 0.0, "a positive finite number"),
+        stretch=table.vector("stretch", [1.0, 1.0, 1.0], 3, lambda x: x > 0.0,
+                             "a list of 3 positive finite numbers"),
+        rotation=_choice(table, "rotation", "random", procedural.ROTATIONS),
+        variation=table.number("variation", 0.0, lambda x: 0.0 <= x < 1.0, "a number in [0, 1)"),
+        seed=table.integer("seed", 0, 0, MAX_SEED),
+    )
+
+
 def _local_shape(table: _Table, shape: str, scene_path: str, base_dir: Path):
     """The shape in its own frame: (vertices, faces, centre that scale and rotation act about)."""
     def positive(x: float) -> bool:
@@ -354,6 +449,10 @@ def _local_shape(table: _Table, shape: str, scene_path: str, base_dir: Path):
     elif shape == "sphere":
         radius = table.number("radius", 1.0, positive, "a positive finite number")
         vertices, faces = shapes.sphere(radius, table.integer("subdivisions", 3, 0, MAX_SUBDIVISIONS))
+    elif shape == "terrain":
+        vertices, faces = _terrain(table)
+    elif shape == "scatter":
+        vertices, faces = _scatter(table)
     else:
         radius = table.number("radius", 1.0, positive, "a positive finite number")
         normal, tangent = _plane_frame(table)
