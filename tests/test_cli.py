@@ -26,7 +26,7 @@ bounces = 3
 seed = 5
 
 [camera]
-position = [0.0, 1.0, 3.5]
+position = [0.0, 1.0, 1.8]
 look_at = [0.0, 0.8, 0.0]
 fov = 50.0
 
