@@ -58,6 +58,7 @@ HIST_PER_OCTAVE = 32
 HIST_BINS = HIST_EXACT + HIST_PER_OCTAVE * 24
 GROUPS_PER_BOUNCE = 3       # 4D random groups per path vertex: lights + roulette, BSDF, environment
 ROULETTE_DEPTH = 3
+FLOAT32_MAX = float(np.finfo(np.float32).max)
 OFFSET_SCALE = 1e-5         # ray origins move this much (x max(1, |p|)) off the surface (common practice)
 
 
@@ -302,7 +303,8 @@ def _trace_path(tree, geo, cam, width, height, row, col, key, sample, max_bounce
             if survive <= 0.0 or g_light[3] >= survive:
                 break
             tr, tg, tb = tr / survive, tg / survive, tb / survive
-    if math.isfinite(lr) and math.isfinite(lg) and math.isfinite(lb):
+    # The pass buffer is float32: a sum beyond its range would turn into inf on the way in.
+    if abs(lr) <= FLOAT32_MAX and abs(lg) <= FLOAT32_MAX and abs(lb) <= FLOAT32_MAX:   # NaN fails too
         out[0], out[1], out[2] = lr, lg, lb
     else:                                  # never let one bad sample poison the image
         out[0], out[1], out[2] = 0.0, 0.0, 0.0
