@@ -80,3 +80,21 @@ def test_lines_meeting_a_thin_slab_follow_its_surface_area():
     measured = in_slab.sum() / in_outer.sum()
     sigma = np.sqrt(expected * (1 - expected) / in_outer.sum())
     assert abs(measured - expected) < SIGMAS * sigma, (measured, expected, sigma)
+
+
+def test_end_point_overlap_is_zero_for_disjoint_boxes_and_positive_for_nested_surfaces():
+    """EPO (Aila, Karras & Laine 2013, eq. 3) by its definition: far-apart quads give disjoint boxes, so
+    no surface lies in a box it does not belong to (EPO = 0); two concentric spheres cannot be separated
+    by boxes (the inner one lies inside every box of the outer one's top nodes), so EPO > 0."""
+    from tracer.accel.epo import bvh_epo
+    quad = np.array([[0, 0, 0], [1, 0, 0], [1, 1, 0], [0, 1, 0]], float)
+    faces = np.array([[0, 1, 2], [0, 2, 3]])
+    accel = build_accel(np.vstack([quad, quad + [10.0, 0.0, 0.0]]), np.vstack([faces, faces + 4]),
+                        kind="bvh", leaf_size=2)
+    assert bvh_epo(accel.tree)[0] == 0.0
+    outer = trimesh.creation.icosphere(subdivisions=2, radius=1.0)
+    inner = trimesh.creation.icosphere(subdivisions=2, radius=0.5)
+    vertices = np.vstack([outer.vertices, inner.vertices])
+    faces = np.vstack([outer.faces, inner.faces + len(outer.vertices)])
+    epo, stderr = bvh_epo(build_accel(vertices, faces, kind="bvh").tree)
+    assert epo > 4 * stderr > 0.0
