@@ -20,33 +20,35 @@ LEAF_HISTOGRAM_EDGES = (0, 1, 2, 3, 4, 5, 9, 17, 33, 65)   # bins [0], [1], ... 
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _bvh_walk(nodes_f, nodes_i, depth, overlap):
-    """Depth of every node, and for inner nodes the area of the children's box intersection / own area."""
-    n_nodes = nodes_i.shape[0]
+def _bvh_walk(nodes_i, depth, overlap, lo, hi):
+    """Depth of every 4-wide record (parents come first: depth-first order) and its sibling overlap.
+
+    lo, hi (N, 4, 3): the lanes' boxes. overlap[r] = sum over pairs of used lanes of the area of their
+    boxes' intersection, divided by the area of the record's own box (the union of its lanes).
+    """
     depth[0] = 0
-    for n in range(n_nodes):
-        overlap[n] = 0.0
-        if nodes_i[n, 7] > 0:
-            continue
-        left, right = n + 1, nodes_i[n, 6]
-        depth[left] = depth[n] + 1
-        depth[right] = depth[n] + 1
-        ex = min(nodes_f[left, 3], nodes_f[right, 3]) - max(nodes_f[left, 0], nodes_f[right, 0])
-        ey = min(nodes_f[left, 4], nodes_f[right, 4]) - max(nodes_f[left, 1], nodes_f[right, 1])
-        ez = min(nodes_f[left, 5], nodes_f[right, 5]) - max(nodes_f[left, 2], nodes_f[right, 2])
-        own = _area(nodes_f, n)
-        if own > 0.0 and ex >= 0.0 and ey >= 0.0 and ez >= 0.0:   # disjoint boxes overlap in nothing
-            overlap[n] = 2.0 * (np.float64(ex) * ey + np.float64(ey) * ez + np.float64(ez) * ex) / own
-
-
-@numba.njit(cache=True, error_model="numpy")
-def _area(nodes_f, n):
-    dx = nodes_f[n, 3] - nodes_f[n, 0]
-    dy = nodes_f[n, 4] - nodes_f[n, 1]
-    dz = nodes_f[n, 5] - nodes_f[n, 2]
-    if dx < 0.0 or dy < 0.0 or dz < 0.0:
-        return 0.0
-    return 2.0 * (np.float64(dx) * dy + np.float64(dy) * dz + np.float64(dz) * dx)
+    for r in range(nodes_i.shape[0]):
+        lx, ly, lz, hx, hy, hz = np.inf, np.inf, np.inf, -np.inf, -np.inf, -np.inf
+        for k in range(4):
+            if nodes_i[r, 28 + k] < 0:
+                continue
+            if nodes_i[r, 28 + k] == 0:
+                depth[nodes_i[r, 24 + k]] = depth[r] + 1
+            lx, ly, lz = min(lx, lo[r, k, 0]), min(ly, lo[r, k, 1]), min(lz, lo[r, k, 2])
+            hx, hy, hz = max(hx, hi[r, k, 0]), max(hy, hi[r, k, 1]), max(hz, hi[r, k, 2])
+        shared = 0.0
+        for k in range(4):
+            for m in range(k + 1, 4):
+                if nodes_i[r, 28 + k] < 0 or nodes_i[r, 28 + m] < 0:
+                    continue
+                ex = min(hi[r, k, 0], hi[r, m, 0]) - max(lo[r, k, 0], lo[r, m, 0])
+                ey = min(hi[r, k, 1], hi[r, m, 1]) - max(lo[r, k, 1], lo[r, m, 1])
+                ez = min(hi[r, k, 2], hi[r, m, 2]) - max(lo[r, k, 2], lo[r, m, 2])
+                if ex >= 0.0 and ey >= 0.0 and ez >= 0.0:   # disjoint boxes overlap in nothing
+                    shared += 2.0 * (ex * ey + ey * ez + ez * ex)
+        ex, ey, ez = hx - lx, hy - ly, hz - lz
+        own = 2.0 * (ex * ey + ey * ez + ez * ex)
+        overlap[r] = shared / own if own > 0.0 else 0.0
 
 
 def box_area(lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
@@ -99,16 +101,36 @@ def tree_memory(tree: Tree) -> int:
 
 
 def bvh_stats(tree: Tree, n_triangles: int) -> dict:
+    """Statistics of the 4-wide BVH (layout in `tracer.accel.tree`).
+
+    Nodes are the records (inner nodes) plus the leaves (lanes holding triangles); a leaf's depth is its
+    record's depth + 1, the root record's depth being 0. The SAH cost sums the area of every record's
+    own box (the union of its lanes) and N A over the leaves. Sibling overlap is the mean over records of
+    the summed pairwise intersection areas of their children's boxes over the record's own area (for a
+    binary node, the usual overlap of its two children). EPO: see `tracer.accel.epo`.
+    """
     nodes_f, nodes_i = tree.nodes_f, tree.nodes_i
-    n_nodes = nodes_i.shape[0]
-    depth = np.zeros(n_nodes, np.int64)
-    overlap = np.zeros(n_nodes)
-    _bvh_walk(nodes_f, nodes_i, depth, overlap)
-    is_leaf = nodes_i[:, 7] > 0
-    areas = box_area(nodes_f[:, 0:3], nodes_f[:, 3:6])
-    out = summarise(nodes_i[is_leaf, 7], depth[is_leaf], areas[is_leaf], areas[~is_leaf], areas[0],
-                    n_nodes, n_triangles, len(tree.refs), tree_memory(tree))
-    out["sibling_overlap"] = float(overlap[~is_leaf].mean()) if np.any(~is_leaf) else 0.0
+    n_records = nodes_i.shape[0]
+    lo = np.stack([nodes_f[:, 0:4], nodes_f[:, 8:12], nodes_f[:, 16:20]], axis=-1).astype(np.float64)
+    hi = np.stack([nodes_f[:, 4:8], nodes_f[:, 12:16], nodes_f[:, 20:24]], axis=-1).astype(np.float64)
+    counts = nodes_i[:, 28:32]
+    depth = np.zeros(n_records, np.int64)
+    overlap = np.zeros(n_records)
+    _bvh_walk(nodes_i, depth, overlap, lo, hi)
+    used = counts >= 0
+    own_lo = np.where(used[..., None], lo, np.inf).min(axis=1)
+    own_hi = np.where(used[..., None], hi, -np.inf).max(axis=1)
+    is_leaf = counts > 0
+    leaf_sizes = counts[is_leaf]
+    leaf_depths = np.broadcast_to(depth[:, None] + 1, counts.shape)[is_leaf]
+    leaf_areas = box_area(lo[is_leaf], hi[is_leaf])
+    inner_areas = box_area(own_lo, own_hi)
+    out = summarise(leaf_sizes, leaf_depths, leaf_areas, inner_areas, inner_areas[0],
+                    n_records + len(leaf_sizes), n_triangles, len(tree.refs), tree_memory(tree))
+    out["sibling_overlap"] = float(overlap.mean()) if n_records else 0.0
+    out["branching"] = float(np.count_nonzero(used)) / max(n_records, 1)
+    from tracer.accel.epo import bvh_epo  # epo uses this module's cost constants
+    out["epo"], out["epo_stderr"] = bvh_epo(tree)
     return out
 
 

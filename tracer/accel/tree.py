@@ -1,12 +1,17 @@
 """The flat form every acceleration structure takes, so one set of kernels can trace through any of them.
 
-A structure is a `Tree`: a few contiguous arrays linked by index. Node records are 8 words of 32 bits;
-`nodes_f` and `nodes_i` are two views of the same memory (float32 and int32), so a node's box and its
-links sit in one 32-byte record. What the words mean depends on `kind`:
+A structure is a `Tree`: a few contiguous arrays linked by index. Node records are rows of 32-bit words
+(8 words for the kd-tree and brute, 32 for the BVH); `nodes_f` and `nodes_i` are two views of the same
+memory (float32 and int32), so a node's boxes and its links sit in one record. What the words mean
+depends on `kind`:
 
-- BVH (kind 1), depth-first order, left child = node + 1:
-  f[0:3] box lo, f[3:6] box hi, i[6] = right child (inner) or first reference (leaf), i[7] = count of
-  references (0 = inner node).
+- BVH (kind 1): 4-wide records of 32 words (128 bytes, aligned to 128 bytes: two whole cache lines),
+  depth-first order (a record's children come after it), root = record 0, built by `tracer.accel.bvh`.
+  Lane k (0..3) is one child: its box is f[8a + k] (lo) and f[8a + 4 + k] (hi) on axis a (x, y, z),
+  so each of the six planes of the four boxes is a run of 4 float32 (structure of arrays: one vector
+  load each); i[24 + k] is the child's record (inner child) or its first reference (leaf child);
+  i[28 + k] is the leaf's count of references, 0 for an inner child, -1 for an unused lane (whose box
+  is lo = +inf, hi = -inf, so no ray enters it).
 - kd-tree (kind 2): laid out by `tracer.accel.kdtree` (see its docstring).
 - brute (kind 0): no nodes; one leaf holding every triangle.
 
