@@ -58,7 +58,8 @@ END, PLANAR, START = 0, 1, 2
 BOTH, BELOW, ABOVE = 0, 1, 2            # side of a triangle relative to the split plane
 LEAF = 3                                # node word i[0] of a leaf (0..2 = split axis of an inner node)
 DEFERRED = 4                            # node word i[0] of a cell left for a separate build
-MAX_BAD_SPLITS = 3                      # median build: cuts that separate nothing, allowed on a path
+MAX_BAD_SPLITS = 3                      # median build: the third cut on a path that separates nothing
+                                        # is refused (the cell becomes a leaf)
 LOW32 = 0xFFFFFFFF
 
 
@@ -131,7 +132,7 @@ def _split_clipped_bounds(tri_xyz, tri, box, axis, split, polys, below_lo, below
     m = 3
     for v in range(3):
         for j in range(3):
-            polys[0, v, j] = tri_xyz[tri, 3 * v + j]
+            polys[0, v, j] = np.float64(tri_xyz[tri, 3 * v + j])
     src, dst = 0, 1
     for plane in range(6):
         a = plane % 3
@@ -195,7 +196,7 @@ def _split_clipped_bounds(tri_xyz, tri, box, axis, split, polys, below_lo, below
             n = 3
             for v in range(3):
                 for j in range(3):
-                    polys[poly, v, j] = tri_xyz[tri, 3 * v + j]
+                    polys[poly, v, j] = np.float64(tri_xyz[tri, 3 * v + j])
         if part == 0:
             _outward_bounds(polys[poly], n, below_lo, below_hi, out_below)
         else:
@@ -298,7 +299,7 @@ def _sweep_axis(events, begin, end, n, box, a, dx, dy, dz, cost_traverse, cost_i
 def build_kdtree_kernel(tri_xyz, arena, n_events, root_box, n_root, root_bad, use_sah, leaf_size, max_depth,
                         max_refs, cost_traverse, cost_intersect, empty_bonus, defer_below):
     """Build the tree over the `n_root` triangles whose sorted events of axis a are arena[a, :n_events[a]]
-    (arena (3, cap) int64), in the cell root_box (6,) float32; tri_xyz (F, 9) float64 vertices.
+    (arena (3, cap) int64), in the cell root_box (6,) float32; tri_xyz (F, 9) float32 vertices.
 
     Returns the binary nodes (N, 8) int32 (layout: `tracer.accel.kdtree.binary_nodes`), the references
     (R,) int32, and the deferred cells: with defer_below > 0 every cell below the root holding at most

@@ -20,8 +20,8 @@ of every structure with its own C_T = C_I = 1, so structures compare on one scal
 Median build (`build="median"`): the cell is cut at the middle of its longest axis, down to `leaf_size`
 references or the depth limit; a cut after which one child still holds every reference while the other
 gets copies of some separates nothing (a fan of triangles around a vertex never gets below its size),
-and after three of them on a path the cell becomes a leaf (the "bad refines" rule of Pharr, Jakob &
-Humphreys, section 4.4, from memory).
+and a cell whose cut would be the third such on its path becomes a leaf instead (the "bad refines"
+rule of Pharr, Jakob & Humphreys, section 4.4, from memory).
 The SAH build ignores `leaf_size`: its termination is the cost rule above.
 
 Limits (both builds): depth at most 8 + 1.3 log2 N (the rule of thumb of Pharr, Jakob & Humphreys,
@@ -76,7 +76,6 @@ COST_INTERSECT = 1.0
 EMPTY_BONUS = 0.8                       # Wald & Havran 2006: lambda(p) when one side is empty
 MAX_REFERENCES_PER_TRIANGLE = 16
 MAX_TRIANGLES = 1 << 26                 # event keys hold 30 bits of triangle id, entry codes 28 of record
-RECORD_WORDS = 16
 TOP_TASK_SHARE = 32                     # cells of at most N / 32 triangles are built in parallel ...
 PARALLEL_MIN_TRIANGLES = 20000          # ... for meshes of at least this many triangles
 
@@ -138,9 +137,9 @@ def build_kdtree(vertices: np.ndarray, faces: np.ndarray, build: str = "sah", le
     bounds = (np.concatenate([lo.min(axis=0), hi.max(axis=0)]) if n_tris
               else np.zeros(6, np.float32)).astype(np.float32)
     with ThreadPoolExecutor(max(1, numba.get_num_threads())) as pool:
-        arena, counts = _root_events(lo, hi, pool)
-        binary, refs = _build_binary(corners.reshape(-1, 9).astype(np.float64), arena, counts, bounds,
-                                     build == "sah", int(leaf_size), pool)
+        tri_xyz = np.ascontiguousarray(corners.reshape(-1, 9))
+        binary, refs = _build_binary(tri_xyz, *_root_events(lo, hi, pool), bounds, build == "sah",
+                                     int(leaf_size), pool)
     return tree_from_binary(binary, refs, corners, bounds)
 
 
@@ -155,13 +154,16 @@ def _build_binary(tri_xyz, arena, counts, bounds, use_sah, leaf_size, pool):
     top, top_refs, events, start, count, box, depth, tris = build_kdtree_kernel(
         tri_xyz, arena, counts, bounds, n_tris, 0, use_sah, leaf_size, max_depth,
         MAX_REFERENCES_PER_TRIANGLE * max(n_tris, 1), COST_TRAVERSE, COST_INTERSECT, EMPTY_BONUS, defer_below)
+    del arena                                       # the root's events: the largest buffer, no longer needed
     if len(tris) == 0:
         return top, top_refs
+    deferred_events = [events]                      # dropped once every subtree has copied its part
+    del events
 
     def subtree(k):
         sub_arena = np.empty((3, int(2.5 * count[k].max()) + 64), np.int64)
         for a in range(3):
-            sub_arena[a, :count[k, a]] = events[a, start[k, a]:start[k, a] + count[k, a]]
+            sub_arena[a, :count[k, a]] = deferred_events[0][a, start[k, a]:start[k, a] + count[k, a]]
         nodes, refs, *_ = build_kdtree_kernel(
             tri_xyz, sub_arena, count[k].copy(), box[k].copy(), tris[k], depth[k, 1], use_sah, leaf_size,
             max_depth - depth[k, 0], MAX_REFERENCES_PER_TRIANGLE * max(tris[k], 1), COST_TRAVERSE,
@@ -170,7 +172,8 @@ def _build_binary(tri_xyz, arena, counts, bounds, use_sah, leaf_size, pool):
 
     order = np.argsort(-tris, kind="stable")
     built = dict(zip(order.tolist(), pool.map(subtree, order.tolist()), strict=True))
-    subtrees = [built[k] for k in range(len(tris))]
+    deferred_events.clear()
+    subtrees = [built.pop(k) for k in range(len(tris))]
     node_base = np.concatenate([[0], np.cumsum([len(n) for n, _ in subtrees])]).astype(np.int64)
     ref_base = np.concatenate([[0], np.cumsum([len(r) for _, r in subtrees])]).astype(np.int64)
     return stitch_subtrees(top, top_refs, np.concatenate([n for n, _ in subtrees]), node_base,
