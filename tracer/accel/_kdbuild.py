@@ -333,8 +333,8 @@ def build_kdtree_kernel(tri_xyz, arena, n_events, root_box, n_root, root_bad, us
     n_only_below = np.zeros(3, np.int64)
     n_only_above = np.zeros(3, np.int64)
 
-    nodes = np.zeros((2 * n_tris + 16, 8), np.int32)
-    refs = np.empty((n_tris + 16, 1), np.int32)
+    nodes = np.zeros((2 * n_root + 16, 8), np.int32)     # grown on demand
+    refs = np.empty((2 * n_root + 16, 1), np.int32)
     n_nodes, n_refs = 0, 0
 
     stack_cap = max_depth + 4
