@@ -77,13 +77,13 @@ class Accel:
         n = len(origins)
         t_max = np.ascontiguousarray(np.broadcast_to(np.asarray(t_max, np.float32), (n,)))
         t = np.empty(n, np.float32)
-        ref = np.empty(n, np.int32)
+        triangle = np.empty(n, np.int32)
         u = np.zeros(n, np.float32)
         v = np.zeros(n, np.float32)
         nodes = np.empty(n, np.int32)
         tris = np.empty(n, np.int32)
-        _traverse.intersect_rays(self.tree, origins, directions, t_max, closest, t, ref, u, v, nodes, tris)
-        triangle = np.where(ref >= 0, self.tree.refs[np.maximum(ref, 0)], -1).astype(np.int32)
+        _traverse.intersect_rays(self.tree, origins, directions, t_max, closest, t, triangle, u, v, nodes,
+                                 tris)
         return Hits(t, triangle, u, v, nodes, tris)
 
     def intersect(self, origins: np.ndarray, directions: np.ndarray, t_max=np.inf) -> Hits:
