@@ -1,23 +1,33 @@
 """The flat form every acceleration structure takes, so one set of kernels can trace through any of them.
 
-A structure is a `Tree`: a few contiguous arrays linked by index. Node records are rows of 32-bit words
-(8 words for the kd-tree and brute, 32 for the BVH); `nodes_f` and `nodes_i` are two views of the same
-memory (float32 and int32), so a node's boxes and its links sit in one record. What the words mean
-depends on `kind`:
+A structure is a `Tree`: a few contiguous arrays linked by index. Node records are rows of W 32-bit
+words, W depending on the kind (32 for the BVH, 16 for the kd-tree, 8 for brute's single record);
+`nodes_f` and `nodes_i` are two (N, W) views of the same memory (float32 and int32), so a node's boxes
+or split planes and its links sit in one record. What the words mean depends on `kind`:
 
 - BVH (kind 1): 4-wide records of 32 words (128 bytes, aligned to 128 bytes: two whole cache lines),
-  depth-first order (a record's children come after it), root = record 0, built by `tracer.accel.bvh`.
+  depth-first order (a record's children come after it), root = record 0, built by `tracer.accel.bvh`
+  (a binary build collapsed to four children per record).
   Lane k (0..3) is one child: its box is f[8a + k] (lo) and f[8a + 4 + k] (hi) on axis a (x, y, z),
   so each of the six planes of the four boxes is a run of 4 float32 (structure of arrays: one vector
   load each); i[24 + k] is the child's record (inner child) or its first reference (leaf child);
   i[28 + k] is the leaf's count of references, 0 for an inner child, -1 for an unused lane (whose box
   is lo = +inf, hi = -inf, so no ray enters it).
-- kd-tree (kind 2): laid out by `tracer.accel.kdtree` (see its docstring).
-- brute (kind 0): no nodes; one leaf holding every triangle.
+- kd-tree (kind 2): treelet records of 16 words (64 bytes, one cache line), root = record 0, built by
+  `tracer.accel.kdtree`. A treelet record holds up to three levels of the binary kd-tree (seven nodes
+  in heap order: i[0] packs 2 bits per node, a split axis or "link"; f[1 + p] is node p's split
+  position, i[1 + p] its link word when it is a link; i[8..15] the links to the children of the
+  third-level nodes), so a ray loads one record per three levels; a leaf record has i[0] = -1,
+  i[1] = first reference, i[2] = count. A link word is a record index, -1 for an empty leaf, or a
+  small leaf packed into the word itself. The word-by-word layout is in the docstring of
+  `tracer.accel.kdtree`. No cell boxes are stored: a cell is `bounds` cut by the splits on its path.
+- brute (kind 0): one 8-word record that the kernels do not read (they test every reference in
+  order): f[0..5] the scene box, i[6] = 0 the first reference, i[7] the count of references (every
+  triangle). `node_records` allocates it.
 
 `refs[k]` is the scene triangle id of reference k; `leaf_tris[k]` holds that triangle's vertices
 (v0, v1, v2 as 9 float32), copied in reference order so a leaf reads contiguous memory. A kd-tree may
-reference one triangle several times.
+reference one triangle several times (a triangle straddling a split is referenced on both sides).
 """
 from typing import NamedTuple
 
@@ -29,8 +39,8 @@ STACK_SIZE = 128        # entries of the explicit traversal stack (a tree deeper
 
 class Tree(NamedTuple):
     kind: int                   # BRUTE, BVH or KDTREE
-    nodes_f: np.ndarray         # (N, 8) float32 view of the node records
-    nodes_i: np.ndarray         # (N, 8) int32 view of the same memory
+    nodes_f: np.ndarray         # (N, W) float32 view of the node records (W words: see above)
+    nodes_i: np.ndarray         # (N, W) int32 view of the same memory
     refs: np.ndarray            # (R,) int32 triangle id of each reference
     leaf_tris: np.ndarray       # (R, 9) float32 vertices of each reference's triangle
     bounds: np.ndarray          # (6,) float32 lo, hi of the whole scene

@@ -3,15 +3,11 @@
 Cost uses a perceptually uniform sequential map ("inferno", van der Walt & Smith 2015, the matplotlib
 colour maps designed to be uniform in CAM02-UCS); ratios use a diverging map centred on 0 ("RdBu",
 Brewer's ColorBrewer schemes, Harrower & Brewer 2003, The Cartographic Journal 40(1)).
+matplotlib is imported on first use: it is not needed to start the program.
 """
-import os
-import tempfile
-
 import numpy as np
-from matplotlib import colormaps
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.colors import LogNorm, Normalize
-from matplotlib.figure import Figure
+
+from tracer.io.atomic import atomic_path
 
 SEQUENTIAL = "inferno"
 DIVERGING = "RdBu_r"
@@ -40,6 +36,10 @@ def write_heatmaps(path: str, panels: list[tuple[str, np.ndarray]], label: str, 
     label: what the values are, with units (shown on the bar with the range). diverging: a map
     centred on 0 with symmetric limits (for log ratios). Written atomically; returns `path`.
     """
+    from matplotlib import colormaps
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.colors import LogNorm, Normalize
+    from matplotlib.figure import Figure
     images = [np.asarray(img, np.float64) for _, img in panels]
     if diverging:
         finite = np.concatenate([im[np.isfinite(im)].ravel() for im in images] or [[0.0]])
@@ -74,13 +74,6 @@ def write_heatmaps(path: str, panels: list[tuple[str, np.ndarray]], label: str, 
     bar = fig.colorbar(mappable, ax=list(axes), fraction=0.05 if n == 1 else 0.02, pad=0.02)
     bar.set_label(f"{label}\n({range_text})", fontsize=8)
     bar.ax.tick_params(labelsize=7)
-    folder = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(suffix=".png", dir=folder)
-    os.close(fd)
-    try:
-        fig.savefig(tmp, dpi=DPI, format="png", bbox_inches="tight", pad_inches=0.1)  # keep the bar label
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_path(path) as temporary:  # bbox "tight" keeps the bar label inside the image
+        fig.savefig(temporary, dpi=DPI, format="png", bbox_inches="tight", pad_inches=0.1)
     return path

@@ -14,13 +14,11 @@ uniform lines, shadow rays stop at the first hit and closest-hit rays stop early
 import base64
 import html
 import io
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
+
+from tracer.io.atomic import atomic_open
 
 # Above this spread of values (max / min) the cost plot uses logarithmic axes: brute force tests every
 # triangle and would squash the structures into one corner of linear axes.
@@ -73,6 +71,8 @@ def measured_costs(stats: dict) -> tuple[float, float]:
 
 def cost_plot_png(results: dict) -> bytes:
     """PNG of predicted (SAH) cost against measured nodes, triangles and their sum per ray, per SPEC."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg  # on first use: slow to import
+    from matplotlib.figure import Figure
     specs = list(results)
     predicted = np.array([float(_get(results[s], "build", "sah_cost", default=np.nan)) for s in specs])
     nodes, tris = (np.array(column) for column in zip(*(measured_costs(results[s]) for s in specs),
@@ -272,12 +272,6 @@ def write_report(path, *, scene_name: str, scene_path: str, results: dict, table
     parts.append(_agreement_html(agreement))
     parts.append("</body></html>")
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(suffix=".html", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8") as handle:
-            handle.write("\n".join(parts) + "\n")
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_open(path, "w", encoding="utf-8") as handle:
+        handle.write("\n".join(parts) + "\n")
     return path

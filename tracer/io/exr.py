@@ -2,18 +2,17 @@
 
 Row 0 of every array is the top scanline of the data window: OpenEXR's y axis points down
 (OpenEXR, "Technical Introduction", pixel space), and the bindings return scanlines in increasing y.
-Files are written atomically: to a temporary file in the destination folder, then `os.replace`, so a
-reader never sees a half-written image and an interrupted run leaves the previous file intact.
+Files are written atomically (`tracer.io.atomic`): a reader never sees a half-written image and an
+interrupted run leaves the previous file intact. The bindings are imported on first use: they are not
+needed to start the program.
 """
 
-import os
-import secrets
 from pathlib import Path
 
 import numpy as np
-import OpenEXR
 
 from tracer.errors import input_error
+from tracer.io.atomic import atomic_path
 
 EXR_MAGIC = b"\x76\x2f\x31\x01"  # OpenEXR file layout: magic number 20000630, little-endian
 RGB_CHANNELS = ("R", "G", "B")
@@ -38,6 +37,7 @@ def read_exr(path, require: tuple[str, ...] = RGB_CHANNELS) -> tuple[dict[str, n
         raise input_error(path, None, None, f"cannot read: {error.strerror}") from None
     if magic != EXR_MAGIC:
         raise input_error(path, None, None, "not an OpenEXR file")
+    import OpenEXR
     try:
         image = OpenEXR.File(str(path), separate_channels=True)
         header = dict(image.header())
@@ -70,6 +70,7 @@ def write_exr(path, channels: dict[str, np.ndarray], header: dict | None = None)
     float32 and float16 arrays are stored as FLOAT and HALF, uint32 as UINT, other floats as FLOAT.
     `header` adds attributes (str, int, float, numpy vectors); compression defaults to ZIP.
     """
+    import OpenEXR
     path = Path(path)
     if not channels:
         raise ValueError("an EXR needs at least one channel")
@@ -89,12 +90,6 @@ def write_exr(path, channels: dict[str, np.ndarray], header: dict | None = None)
     attributes = {"compression": OpenEXR.ZIP_COMPRESSION, "type": OpenEXR.scanlineimage}
     attributes.update(header or {})  # a copy: the bindings add the windows to the dict they get
     path.parent.mkdir(parents=True, exist_ok=True)
-    # A fresh hidden sibling (same folder, so os.replace is atomic; created with the usual umask).
-    temporary = path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.tmp")
-    try:
+    with atomic_path(path) as temporary:
         OpenEXR.File(attributes, prepared).write(str(temporary))
-        os.replace(temporary, path)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
     return path

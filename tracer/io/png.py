@@ -1,19 +1,19 @@
-"""PNG writing, atomic (temporary file in the destination folder, then `os.replace`).
+"""PNG writing, atomic (`tracer.io.atomic`: temporary file in the destination folder, then rename).
 
-8-bit images go through imageio. Pillow, imageio's PNG back end, cannot store 16-bit RGB, so 16-bit
-images are encoded here following the PNG specification (W3C PNG Second Edition, ISO/IEC 15948:2004):
-signature, IHDR (bit depth 16, colour type 2 = RGB or 6 = RGBA), one zlib IDAT stream of scanlines
-with filter type 0, big-endian samples, IEND; every chunk closed by the CRC-32 of its type and data.
+8-bit images go through imageio (imported on first use: it is not needed to start the program).
+Pillow, imageio's PNG back end, cannot store 16-bit RGB, so 16-bit images are encoded here following
+the PNG specification (W3C PNG Second Edition, ISO/IEC 15948:2004): signature, IHDR (bit depth 16,
+colour type 2 = RGB or 6 = RGBA), one zlib IDAT stream of scanlines with filter type 0, big-endian
+samples, IEND; every chunk closed by the CRC-32 of its type and data.
 """
 
-import os
-import secrets
 import struct
 import zlib
 from pathlib import Path
 
-import imageio.v3 as iio
 import numpy as np
+
+from tracer.io.atomic import atomic_path
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification, section 5.2
 COLOUR_TYPES = {3: 2, 4: 6}  # channels -> PNG colour type (truecolour, truecolour with alpha)
@@ -47,16 +47,11 @@ def write_png(path, image: np.ndarray) -> Path:
     if image.dtype not in (np.uint8, np.uint16):
         raise ValueError(f"image must be uint8 or uint16, got {image.dtype}")
     path.parent.mkdir(parents=True, exist_ok=True)
-    # A fresh hidden sibling (same folder, so os.replace is atomic; created with the usual umask).
-    temporary = path.with_name(f".{path.name}.{os.getpid()}-{secrets.token_hex(4)}.tmp")
-    try:
+    with atomic_path(path) as temporary:
         if image.dtype == np.uint16:
             temporary.write_bytes(encode_png16(image))
         else:
+            import imageio.v3 as iio
             iio.imwrite(temporary, np.ascontiguousarray(image), extension=".png",
                         compress_level=COMPRESS_LEVEL)
-        os.replace(temporary, path)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
     return path

@@ -1,9 +1,9 @@
-"""Statistics JSON files, written atomically (temporary file, then rename)."""
+"""Statistics JSON files, written atomically (`tracer.io.atomic`: temporary file, then rename)."""
 import json
 import math
-import os
-import tempfile
 from pathlib import Path
+
+from tracer.io.atomic import atomic_open
 
 
 def _clean(value):
@@ -21,13 +21,7 @@ def _clean(value):
 
 def write_json(path, data: dict) -> Path:
     path = Path(path)
-    fd, tmp = tempfile.mkstemp(suffix=".json", dir=path.parent or ".")
-    try:
-        with os.fdopen(fd, "w") as handle:
-            json.dump(_clean(data), handle, indent=2, allow_nan=False)
-            handle.write("\n")
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.remove(tmp)
+    with atomic_open(path, "w") as handle:
+        json.dump(_clean(data), handle, indent=2, allow_nan=False)
+        handle.write("\n")
     return path

@@ -7,6 +7,7 @@ from pathlib import Path
 import numpy as np
 
 from tracer.diagnostics.heatmap import write_heatmaps
+from tracer.io.atomic import atomic_open
 from tracer.io.exr import write_exr
 from tracer.io.png import write_png
 from tracer.io.stats_json import write_json
@@ -32,10 +33,9 @@ def checkpoint_path(stem: Path) -> Path:
 def write_checkpoint(stem: Path, checkpoint: Checkpoint, fingerprint: str) -> Path:
     """Save the sums of the whole passes done, for `--resume` (atomically)."""
     path = checkpoint_path(stem)
-    tmp = path.with_name(path.name + ".tmp.npz")
-    np.savez(tmp, sums=checkpoint.sums, samples_done=checkpoint.samples_done, hist=checkpoint.hist,
-             counters=checkpoint.counters, fingerprint=fingerprint)
-    tmp.replace(path)
+    with atomic_open(path, "wb") as handle:  # a handle: given a file name, np.savez would append ".npz"
+        np.savez(handle, sums=checkpoint.sums, samples_done=checkpoint.samples_done, hist=checkpoint.hist,
+                 counters=checkpoint.counters, fingerprint=fingerprint)
     return path
 
 

@@ -6,11 +6,11 @@ Polygons are triangulated by trimesh. Vertices are kept as written (``process=Fa
 silent repair), so that bad data can be reported: a non-finite vertex or a face index outside the
 vertex list is an error naming the file. Zero-area triangles are dropped later, with a warning, by the
 scene loader (``shapes.drop_degenerate``), together with those of the built-in shapes.
+trimesh is imported on first use: most scenes hold no mesh file, and it takes a second to import.
 """
 from pathlib import Path
 
 import numpy as np
-import trimesh
 
 from tracer.errors import input_error
 
@@ -37,6 +37,7 @@ def read_mesh(file: Path, scene_path, table: str, shown_file: str):
             pass
     except (OSError, ValueError) as error:  # ValueError: a NUL character in the path
         raise fail(f"cannot open ({getattr(error, 'strerror', None) or error})") from None
+    import trimesh
     try:
         loaded = trimesh.load(str(file), file_type=file_type, force="mesh", process=False)
         vertices = np.asarray(loaded.vertices, dtype=np.float64)
