@@ -81,7 +81,8 @@ def build_parser() -> argparse.ArgumentParser:
     render = sub.add_parser("render", help="render a scene through one structure")
     _render_options(render)
     render.add_argument("--accel", default="bvh", metavar="SPEC",
-                        help="bvh (binned SAH, default), bvh:median, kdtree, kdtree:median, brute")
+                        help="bvh (binned SAH, default), bvh:median, bvh:lbvh (Morton code: fast build), "
+                             "kdtree, kdtree:median, brute")
     compare = sub.add_parser("compare", help="render a scene through several structures and compare costs")
     _render_options(compare)
     compare.add_argument("--accel", nargs="+", required=True, metavar="SPEC",

@@ -12,6 +12,7 @@ from tracer.accel import _traverse
 from tracer.accel.brute import build_brute
 from tracer.accel.bvh import build_bvh
 from tracer.accel.kdtree import build_kdtree
+from tracer.accel.lbvh import build_lbvh
 from tracer.accel.stats import structure_stats
 from tracer.accel.tree import BRUTE, BVH, KDTREE, Tree
 from tracer.errors import UserError
@@ -19,6 +20,7 @@ from tracer.errors import UserError
 BUILDERS = {
     "bvh:sah": build_bvh,
     "bvh:median": build_bvh,
+    "bvh:lbvh": build_lbvh,
     "kdtree:sah": build_kdtree,
     "kdtree:median": build_kdtree,
     "brute:none": build_brute,

@@ -38,7 +38,7 @@ from tracer.bench.scenes import SCENES, bounce_rays, camera_rays, make_scene
 from tracer.errors import UserError
 from tracer.io.stats_json import write_json
 
-STRUCTURES = ("bvh", "bvh:median", "kdtree", "kdtree:median", "brute")
+STRUCTURES = ("bvh", "bvh:median", "bvh:lbvh", "kdtree", "kdtree:median", "brute")
 RAY_KINDS = ("camera", "bounce")
 MIN_BRUTE_RAYS = 500      # about two chunks of the traversal kernel: both threads busy
 LEAF_SIZE = 4
