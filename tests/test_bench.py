@@ -178,6 +178,8 @@ def test_run_bench_tiny_json(tmp_path, capsys):
         assert {"camera_nodes_per_ray", "growth", "log2_growth", "nodes_per_doubling"} <= entry.keys()
         assert entry["log2_growth"] == pytest.approx(np.log2(entry["triangles"][1])
                                                      / np.log2(entry["triangles"][0]))
+        # With two sizes the one step equals the fitted slope (a line through two points).
+        assert entry["nodes_per_doubling_steps"] == pytest.approx([entry["nodes_per_doubling"]])
     out = capsys.readouterr().out
     assert "cam Mr/s" in out and "x brute cam" in out and "scaling" in out and str(path) in out
 

@@ -26,6 +26,7 @@ import os
 import platform
 import sys
 import time
+from itertools import pairwise
 from pathlib import Path
 from typing import NamedTuple
 
@@ -212,6 +213,9 @@ def _scaling(results: list[dict], suite: Suite) -> dict:
                 entry["growth"] = float(nodes[-1] / nodes[0]) if nodes[0] > 0 else None
                 entry["log2_growth"] = float(log_n[-1] / log_n[0])
                 entry["nodes_per_doubling"] = float(np.polyfit(log_n, nodes, 1)[0])
+                # Nodes added per doubling of N between successive sizes: constant (or falling) when the
+                # cost grows like a + b log N, rising when it grows faster.
+                entry["nodes_per_doubling_steps"] = (np.diff(nodes) / np.diff(log_n)).tolist()
             out[scene][spec] = entry
     return out
 
@@ -275,15 +279,21 @@ def results_table(results: list[dict]) -> str:
 
 def scaling_table(scaling: dict, labels: list[str]) -> str:
     """Mean nodes per camera ray at each size, per scene and structure, with growth against log2 N."""
+    steps = [f"{a}->{b}" for a, b in pairwise(labels)]
     headers = ["scene", "structure", *(f"nodes @{s}" for s in labels), "growth", "log2 N growth",
-               "nodes/doubling"]
+               "nodes/doubling", *(f"per doubling {s}" for s in steps)]
     body = []
     for scene, specs in scaling.items():
         for spec, e in specs.items():
             by_size = dict(zip(e["sizes"], e["camera_nodes_per_ray"], strict=True))
+            per_step = dict(zip((f"{a}->{b}" for a, b in pairwise(e["sizes"])),
+                                e.get("nodes_per_doubling_steps", []), strict=False))
             body.append([scene, spec, *(_fmt(by_size.get(s)) for s in labels), _fmt(e.get("growth")),
-                         _fmt(e.get("log2_growth")), _fmt(e.get("nodes_per_doubling"))])
+                         _fmt(e.get("log2_growth")), _fmt(e.get("nodes_per_doubling")),
+                         *(_fmt(per_step.get(s)) for s in steps)])
     text = _render_table(headers, body, text_columns=2)
+    text += ("\nlogarithmic growth (a + b log2 N) adds the same nodes per doubling of N at every size; "
+             "'growth' against\n'log2 N growth' assumes a = 0")
     if "soup" in scaling:
         text += ("\nsoup: triangles fill a volume at a fixed total area, so a ray crosses about N^(1/3) "
                  "leaves before its first hit\n(x2.15 per tenfold N) on top of the log2 N descent, "
