@@ -116,28 +116,24 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     bar = tqdm(total=(settings.samples - done) * h, disable=not progress, unit="row", file=sys.stderr,
                desc=f"{accel.spec} {w}x{h}", leave=False, dynamic_ncols=True, mininterval=0.5)
     try:
-        previous_chunk = numba.set_parallel_chunksize(1)   # rows dealt out one at a time: both cores busy
-        try:
-            for sample in range(done, settings.samples):
-                for row0 in range(0, h, band):
-                    if should_stop is not None and should_stop():
-                        interrupted = True
-                        break
-                    row1 = min(h, row0 + band)
-                    kern.render_rows(accel.tree, geo, cam, w, h, row0, row1, key, sample, settings.bounces,
-                                     clamp, pass_buf, hist, counters)
-                    bar.update(row1 - row0)
-                    rate = counters[:, kern.K_RAYS].sum() / max(time.perf_counter() - start, 1e-9) / 1e6
-                    bar.set_postfix_str(f"sample {sample + 1}/{settings.samples}, {rate:.2f} Mrays/s")
-                if interrupted:
+        for sample in range(done, settings.samples):
+            for row0 in range(0, h, band):
+                if should_stop is not None and should_stop():
+                    interrupted = True
                     break
-                sums += pass_buf
-                done = sample + 1
-                hist_done[:], counters_done[:] = hist, counters
-                if time_limit is not None and time.perf_counter() - start >= time_limit:
-                    break
-        finally:
-            numba.set_parallel_chunksize(previous_chunk)
+                row1 = min(h, row0 + band)
+                kern.render_rows(accel.tree, geo, cam, w, h, row0, row1, key, sample, settings.bounces,
+                                 clamp, pass_buf, hist, counters)
+                bar.update(row1 - row0)
+                rate = counters[:, kern.K_RAYS].sum() / max(time.perf_counter() - start, 1e-9) / 1e6
+                bar.set_postfix_str(f"sample {sample + 1}/{settings.samples}, {rate:.2f} Mrays/s")
+            if interrupted:
+                break
+            sums += pass_buf
+            done = sample + 1
+            hist_done[:], counters_done[:] = hist, counters
+            if time_limit is not None and time.perf_counter() - start >= time_limit:
+                break
     finally:
         bar.close()
         numba.set_num_threads(previous_threads)
