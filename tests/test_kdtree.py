@@ -307,6 +307,9 @@ def test_tree_shape(build):
     repacked = tree_from_binary(nodes_i, tree.refs, v.astype(np.float32)[f], tree.bounds)
     assert np.array_equal(repacked.nodes_i, tree.nodes_i)
     assert len(tree.nodes_i) < np.count_nonzero(~leaves)          # several kd nodes per record
+    # One 64-byte record per cache line (64-byte lines: common practice on x86-64 and ARMv8 cores).
+    assert tree.nodes_i.ctypes.data % 64 == 0 and repacked.nodes_i.ctypes.data % 64 == 0
+    assert tree.nodes_f.ctypes.data == tree.nodes_i.ctypes.data
 
 
 @pytest.mark.parametrize("build", BUILDS)

@@ -1,4 +1,4 @@
-"""kd-tree traversal kernels: front-to-back closest hit and any hit, with mailboxing.
+"""kd-tree traversal kernel: front-to-back closest hit and any hit with mailboxing, one ray at a time.
 
 The classic stack traversal (Jansen 1986; Havran (2000), "Heuristic Ray Shooting Algorithms", PhD thesis,
 Czech Technical University in Prague; Pharr, Jakob & Humphreys, "Physically Based Rendering", 3rd ed.,
@@ -11,13 +11,19 @@ lies before every pending cell: popped cells starting beyond the hit are dropped
 exit: with the disjoint intervals of a kd-tree it ends the walk once the hit lies inside the current
 cell (t_hit <= t_max of the cell).
 
-The tree is read as treelet records (layout: `tracer.accel.kdtree`): a stack entry is a position inside a
-record (record * 8 + position), so a ray walks up to three levels inside one record before it loads the
-next; empty leaves are never visited and small leaves sit in their parent's link word. "Nodes visited"
-counts the records loaded (a pop reloads one) plus the leaves kept in links, so it measures memory
-traffic like the BVH's count of 4-wide records; "triangles tested" counts real triangle tests.
+The tree is read as treelet records (layout: `tracer.accel.kdtree`): a walk position is an entry code,
+record * 8 + position for a node inside a record, or a leaf link (< -1); a ray walks up to three levels
+inside one record before it loads the next; empty leaves are never visited and small leaves sit in
+their parent's link word.
 
-Edge cases (common practice, the classic kd-tree pitfalls):
+The per-level step is the common case first: one multiplication gives t_split, and the near / far /
+both choice and the two child entries are 0/1 arithmetic and selects, not branches (the outcome is as
+good as random from node to node; measured 15% for the choice alone). The exact case analysis below
+runs only at t_split exactly 0, or at every level of a ray with an infinite component of 1/d (an
+axis-parallel ray): a branch the predictor learns. The push is a store that is always made and a stack
+top advanced by 0 or 1.
+
+Edge cases (common practice, the classic kd-tree pitfalls), in `_exact_sides`:
 - a ray parallel to the split plane (d[axis] = 0) stays on its side; if it lies in the plane it visits
   both children over the same interval, because a triangle touching the plane from either side can be
   hit (the box-face rays). Such a push shares its t_min with the cell, which is why the pop loop skips
@@ -34,14 +40,28 @@ Edge cases (common practice, the classic kd-tree pitfalls):
 
 Mailboxing (Amanatides & Woo 1987, "A Fast Voxel Traversal Algorithm for Ray Tracing", Eurographics;
 here with a ray-local list instead of a per-triangle ray id): the ids of the last `MAILBOX_SIZE`
-triangles tested by this ray sit in the top of the caller's `stack_i` (the build keeps the depth, hence
-the stack, below `MAILBOX_BASE`); a reference whose triangle is in the list is skipped, so a triangle
+triangles tested by this ray sit in the top of the ray's scratch (the build keeps the depth, hence the
+stack, below `MAILBOX_BASE`); a reference whose triangle is in the list is skipped, so a triangle
 duplicated across leaves is tested once (for the first MAILBOX_SIZE triangles a ray tests; later ones
 are remembered in a ring).
+
+Counting: "nodes visited" counts the records loaded (the root, every record the walk moves into, and a
+pop, which reloads one) plus the leaves kept in links, so it measures memory traffic like the BVH's
+count of 4-wide records; an empty leaf is never visited and counts nothing. "Triangles tested" counts
+the triangle tests actually made (a mailboxed repeat is not one).
+
+Speed (per-ray walk; `benchmarks/bench_kdtree.py` on the 1M-triangle demo): the walk is a chain of
+dependent steps per level (load the split, subtract, multiply, compare, pick the child), so the code
+keeps that chain short: the ray's origin and 1/d stay in registers and are picked by the axis with
+selects (a load indexed by the axis sat on the chain), and both children's entries are read before the
+plane test decides between them. A stream of several rays in flight per thread with prefetching (as the
+BVH's `intersect_rays` has) was written and measured slower than this walk by 10-40% on both camera and
+diffuse-bounce rays (the records in use stay in cache, and switching rays costs state traffic and
+branch history), so `Accel.intersect` runs this walk too.
 """
 import numba
 import numpy as np
-from numba.core import cgutils, types
+from numba.core import types
 from numba.extending import intrinsic
 
 from tracer.accel._kdbuild import EMPTY_LINK as EMPTY
@@ -54,23 +74,27 @@ MAILBOX_SIZE = 64                       # a power of two (ring index by mask)
 MAILBOX_BASE = STACK_SIZE - MAILBOX_SIZE
 MAX_TRAVERSAL_DEPTH = MAILBOX_BASE      # the build refuses deeper trees
 SLACK = F32(1e-6)                       # relative tolerance on t_split against the cell's interval
+DONE = EMPTY                            # entry code of a finished walk (no walk ever enters an empty leaf)
+RECORD_WORDS = 16                       # int32 words of a treelet record (tracer.accel.kdtree)
+# Kind bits (2 per position) of positions 7..14, the children of the record's bottom level: always links.
+BOTTOM_LINKS = sum(3 << (2 * c) for c in range(7, 15))
 
 
 @intrinsic
-def _borrow(typingctx, array):
-    """`array` without its reference count (null meminfo): reading an array out of the `Tree` tuple and
-    passing it on makes numba add to and take from its shared reference count, two atomic operations
-    per array and ray. Safe while the tree outlives the view, which is only passed down."""
-    if not isinstance(array, types.Array):
+def _address(typingctx, array):
+    """The data pointer of a C-contiguous array: indexed as a flat array, with no reference count and no
+    negative-index check (an index is never negative here). `kd_traverse` reads its arrays this way:
+    one instruction less per access on the chain of each level, and no reference counting of arrays
+    passed to inlined helpers (numba cannot drop the pair around a helper with loops: it cost a dozen
+    calls per step in a trial)."""
+    if not (isinstance(array, types.Array) and array.layout == "C"):
         return None
+    sig = types.CPointer(array.dtype)(array)
 
     def codegen(context, builder, signature, args):
-        view = cgutils.create_struct_proxy(signature.args[0])(context, builder, value=args[0])
-        view.meminfo = cgutils.get_null_value(view.meminfo.type)
-        view.parent = cgutils.get_null_value(view.parent.type)
-        return view._getvalue()
+        return context.make_array(signature.args[0])(context, builder, args[0]).data
 
-    return array(array), codegen
+    return sig, codegen
 
 
 @numba.njit(cache=True, error_model="numpy", inline="always")
@@ -86,101 +110,131 @@ def _slab(lo, hi, o, d, t0, t1):
 
 
 @numba.njit(cache=True, error_model="numpy", inline="always")
-def _child_entry(nodes_i, r, p, kinds, side):
-    """Entry code of child `side` (0 below, 1 above) of position p of record r: r * 8 + position for a
-    node in the same record, link * 8 for another record, the link itself (< -1) for an inline leaf,
-    -1 for an empty leaf."""
-    if p < 3:
-        c = 2 * p + 1 + side
-        if (kinds >> (2 * c)) & 3 != 3:
-            return r * 8 + c
-        link = nodes_i[r, 1 + c]
-    else:
-        link = nodes_i[r, 8 + 2 * (p - 3) + side]
-    return link * 8 if link >= 0 else link
-
-
-@numba.njit(cache=True, error_model="numpy")
-def _kd_traverse(nodes_f, nodes_i, refs, leaf_tris, bounds, stack_i, stack_f, ray, t_max, any_hit):
+def _root_interval(ray, t_max, bounds):
+    """The root cell's interval: the slab test per axis (Kay & Kajiya 1986), parallel axes by position.
+    Returns (entry, t_lo, t_hi): the root, or DONE when the ray misses the scene box."""
     o, d = ray[0], ray[1]
-    # Per axis, in the caller's scratch above the stack (an array: indexing the ray tuple by a run-time
-    # axis compiles to a branch per axis): origin, direction and 1/d exactly (make_ray clamps |d| <
-    # 1e-35 for its slab test); 1/d is inf when it overflows, and then t_split divides instead.
-    axis_data = stack_f[MAILBOX_BASE:MAILBOX_BASE + 6]
-    for a in range(3):
-        axis_data[a, 0] = o[a]
-        axis_data[a, 1] = d[a]
-        axis_data[3 + a, 0] = F32(1.0) / d[a]
-    t_best, best_k, best_u, best_v = t_max, -1, F32(0.0), F32(0.0)
-    # The root cell's interval: the slab test per axis (Kay & Kajiya 1986), parallel axes by position.
     t_lo, t_hi = F32(0.0), t_max
     t_lo, t_hi = _slab(bounds[0], bounds[3], o[0], d[0], t_lo, t_hi)
     t_lo, t_hi = _slab(bounds[1], bounds[4], o[1], d[1], t_lo, t_hi)
     t_lo, t_hi = _slab(bounds[2], bounds[5], o[2], d[2], t_lo, t_hi)
-    if not t_lo <= t_hi * (F32(1.0) + SLACK):
-        return t_best, best_k, best_u, best_v, 1, 0
-    nodes, tested, top, entry = 1, 0, 0, 0
-    while True:
+    entry = 0 if t_lo <= t_hi * (F32(1.0) + SLACK) else DONE
+    return entry, t_lo, t_hi
+
+
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def _general_sides(t_split, near, t_lo, t_hi):
+    """(first side, both, first_hi) for a plane at t_split != 0 (first = near or far side; 0 below, 1
+    above): near side only when the plane is behind the ray or beyond the cell, far side only when the
+    ray crossed it before the cell, else both, the near one first over [t_lo, t_split]."""
+    near_only = np.int64(t_split <= F32(0.0)) | np.int64(t_split > t_hi * (F32(1.0) + SLACK))
+    crossed = np.int64(t_split < t_lo * (F32(1.0) - SLACK))
+    both = (1 - near_only) & (1 - crossed)
+    first = near ^ ((1 - near_only) & crossed)
+    return first, both, (t_split if both else t_hi)
+
+
+@numba.njit(cache=True, error_model="numpy")
+def _exact_sides(oa, da, split, inv_a, t_lo, t_hi):
+    """The full case analysis of a plane (see the module docstring): (first side, both, first_hi,
+    second_lo); when both, the second side is the other one, over [second_lo, t_hi]."""
+    if da == F32(0.0):
+        if oa < split:
+            return 0, 0, t_hi, t_lo
+        if oa > split:
+            return 1, 0, t_hi, t_lo
+        return 0, 1, t_hi, t_lo                     # the ray lies in the plane: both sides
+    if oa == split:
+        t_split = F32(0.0)
+    else:
+        t_split = (split - oa) * inv_a if abs(inv_a) != INF32 else (split - oa) / da
+    near = np.int64(oa > split) | (np.int64(oa == split) & np.int64(da > F32(0.0)))
+    if t_split == F32(0.0) and t_lo == F32(0.0):
+        # The origin lies on the plane, in this cell: the side it leaves is touched at t = 0 only, but a
+        # triangle lying in the plane may be stored there (hit at 0+).
+        return 1 - near, 1, t_lo, t_lo
+    first, both, first_hi = _general_sides(t_split, near, t_lo, t_hi)
+    return first, both, first_hi, t_split
+
+
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def _child_entry(nodes_i, r, links, c):
+    """Entry code of position c (1..14) of record r (`nodes_i` its flat words): r * 8 + c for a node in
+    the same record, link * 8 for another record, the link itself (< -1) for an inline leaf, -1 for an
+    empty leaf. The word of position c's link is 1 + c for c < 7 and 8 + 2 (p - 3) + side = 1 + c for
+    the children of p >= 3."""
+    link = np.int64(nodes_i[r * RECORD_WORDS + 1 + c])
+    outside = link * 8 if link >= 0 else link
+    return outside if (links >> (2 * c)) & 3 == 3 else r * 8 + c
+
+
+@numba.njit(cache=True, error_model="numpy")
+def kd_traverse(nodes_f, nodes_i, refs, leaf_tris, bounds, stack_i, stack_f, ray, t_max, any_hit):
+    """One ray's walk: (t, reference, u, v, nodes visited, triangles tested); t = t_max and reference -1
+    when nothing lies at 0 < t < t_max (with `any_hit`, the walk stops at the first hit found).
+
+    `stack_i` (STACK_SIZE,) int32 and `stack_f` (STACK_SIZE, 2) float32 are the caller's scratch: the
+    pending far cells (entry, t_min, t_max) and, in stack_i[MAILBOX_BASE:], the mailbox.
+    `_traverse.closest_hit` / `any_hit` call it with borrowed arrays (`_traverse._borrow`). Inside, the
+    arrays are read through their data pointers (`_address`), as flat arrays.
+    """
+    entry, t_lo, t_hi = _root_interval(ray, t_max, bounds)
+    # Per axis: origin, direction and the exact 1/d (inf when it overflows, and then t_split divides;
+    # make_ray's 1/d is clamped for the slab test).
+    (ox, oy, oz), (dx, dy, dz) = ray[0], ray[1]
+    ix, iy, iz = F32(1.0) / dx, F32(1.0) / dy, F32(1.0) / dz
+    # A ray with an infinite 1/d (an axis-parallel one) takes the exact case analysis at every level.
+    # (This use of ix, iy, iz also keeps LLVM from turning the per-level pick of 1/d into a division.)
+    parallel = abs(ix) == INF32 or abs(iy) == INF32 or abs(iz) == INF32
+    n_refs = leaf_tris.shape[0]
+    nodes_f, nodes_i, refs, stack_i, stack_f = (_address(nodes_f), _address(nodes_i), _address(refs),
+                                                _address(stack_i), _address(stack_f))
+    top, t_best, best_k, best_u, best_v, nodes, tested = 0, t_max, -1, F32(0.0), F32(0.0), 1, 0
+    triangles = numba.carray(_address(leaf_tris), (n_refs, 9))
+    while entry != DONE:
         first_ref, count = 0, 0
         if entry >= 0:
             r, p = entry >> 3, entry & 7
-            kinds = nodes_i[r, 0]
+            kinds = np.int64(nodes_i[r * RECORD_WORDS])
             if kinds >= 0:
-                axis = (kinds >> (2 * p)) & 3
-                split = nodes_f[r, 1 + p]
-                oa, da = axis_data[axis, 0], axis_data[axis, 1]
-                # The side to visit now (over [t_lo, first_hi]) and the side to push, if any (over
-                # [second_lo, second_hi]); 0 = below, 1 = above.
-                second = -1
-                second_lo, second_hi, first_hi = t_lo, t_hi, t_hi
-                if da == F32(0.0):
-                    if oa < split:
-                        first = 0
-                    elif oa > split:
-                        first = 1
-                    else:                               # the ray lies in the plane: both sides
-                        first, second = 0, 1
-                else:
-                    if oa == split:
-                        t_split = F32(0.0)
+                links = kinds | BOTTOM_LINKS
+                while True:
+                    axis = (kinds >> (2 * p)) & 3
+                    split = nodes_f[r * RECORD_WORDS + 1 + p]
+                    # Selects rather than a load at the axis: a shorter chain from one level to the next.
+                    oa = ox if axis == 0 else (oy if axis == 1 else oz)
+                    inv_a = ix if axis == 0 else (iy if axis == 1 else iz)
+                    t_split = (split - oa) * inv_a
+                    if parallel or t_split == F32(0.0):
+                        da = dx if axis == 0 else (dy if axis == 1 else dz)
+                        first, both, first_hi, second_lo = _exact_sides(oa, da, split, inv_a, t_lo, t_hi)
                     else:
-                        inv_a = axis_data[3 + axis, 0]
-                        t_split = (split - oa) * inv_a if abs(inv_a) != INF32 else (split - oa) / da
-                    near = np.int64(oa > split) | (np.int64(oa == split) & np.int64(da > F32(0.0)))
-                    if t_split == F32(0.0) and t_lo == F32(0.0):
-                        # The origin lies on the plane, in this cell: the side it leaves is touched at
-                        # t = 0 only, but a triangle lying in the plane may be stored there (hit at 0+).
-                        first, second, first_hi = 1 - near, near, t_lo
-                    else:
-                        # Near side only when the plane is behind the ray or beyond the cell, far side
-                        # only when the ray crossed it before the cell, else both; as 0/1 arithmetic
-                        # and selects, not branches: the outcome is data-dependent (measured 15%).
-                        beyond = t_split > t_hi * (F32(1.0) + SLACK)
-                        near_only = np.int64(t_split <= F32(0.0)) | np.int64(beyond)
-                        crossed = np.int64(t_split < t_lo * (F32(1.0) - SLACK))
-                        far_only = (1 - near_only) & crossed
-                        both = (1 - near_only) & (1 - crossed)
-                        first = near ^ far_only
-                        second = 1 - near if both else -1
-                        first_hi = t_split if both else t_hi
+                        first, both, first_hi = _general_sides(t_split, np.int64(oa > split), t_lo, t_hi)
                         second_lo = t_split
-                first = _child_entry(nodes_i, r, p, kinds, first)
-                if second >= 0:
-                    second = _child_entry(nodes_i, r, p, kinds, second)
-                if first == EMPTY:                      # empty leaves are never visited
-                    first, first_hi, t_lo, second = second, second_hi, second_lo, EMPTY
-                if second != EMPTY:
-                    stack_i[top] = second
-                    stack_f[top, 0] = second_lo
-                    stack_f[top, 1] = second_hi
-                    top += 1
-                if first != EMPTY:
-                    if first < 0 or first >> 3 != r:
-                        nodes += 1                      # another record, or a leaf kept in a link
-                    entry, t_hi = first, first_hi
+                    # Both children's entries are read before the plane test decides (they depend on the
+                    # position only, so the loads overlap the arithmetic) and picked by selects.
+                    below = _child_entry(nodes_i, r, links, 2 * p + 1)
+                    above = _child_entry(nodes_i, r, links, 2 * p + 2)
+                    first_entry = above if first else below
+                    second_entry = (below if first else above) if both else EMPTY
+                    # Empty leaves are never visited: an empty first side hands over to the second; the
+                    # second is pushed when both are there (the store is made anyway, top moves by 0 or 1).
+                    first_empty = first_entry == EMPTY
+                    stack_i[top] = second_entry
+                    stack_f[2 * top] = second_lo
+                    stack_f[2 * top + 1] = t_hi
+                    top += np.int64(not first_empty) & np.int64(second_entry != EMPTY)
+                    entry = second_entry if first_empty else first_entry
+                    t_lo = second_lo if first_empty else t_lo
+                    t_hi = t_hi if first_empty else first_hi
+                    if entry >> 3 != r:             # out of the record: a link, a leaf, or nothing (< 0)
+                        break
+                    p = entry & 7
+                if entry != EMPTY:
+                    nodes += 1                          # another record, or a leaf kept in a link
                     continue
             else:
-                first_ref, count = nodes_i[r, 1], nodes_i[r, 2]
+                first_ref, count = nodes_i[r * RECORD_WORDS + 1], nodes_i[r * RECORD_WORDS + 2]
         else:
             code = -2 - entry
             first_ref, count = code >> INLINE_COUNT_BITS, code & ((1 << INLINE_COUNT_BITS) - 1)
@@ -195,42 +249,18 @@ def _kd_traverse(nodes_f, nodes_i, refs, leaf_tris, bounds, stack_i, stack_f, ra
                 continue
             stack_i[MAILBOX_BASE + (tested & (MAILBOX_SIZE - 1))] = tri
             tested += 1
-            t, u, v = hit_triangle(leaf_tris, k, ray, t_best)
+            t, u, v = hit_triangle(triangles, k, ray, t_best)
             if t < t_best:
                 t_best, best_k, best_u, best_v = t, k, u, v
                 if any_hit:
-                    return t_best, best_k, best_u, best_v, nodes, tested
+                    top = 0                             # nothing more to pop: the walk is over
+                    break
         # Pop the next pending cell that starts before the closest hit (early exit when none does).
-        found = False
+        entry = DONE
         while top > 0:
             top -= 1
-            if stack_f[top, 0] <= t_best:
-                entry, t_lo, t_hi = stack_i[top], stack_f[top, 0], stack_f[top, 1]
+            if stack_f[2 * top] <= t_best:
+                entry, t_lo, t_hi = np.int64(stack_i[top]), stack_f[2 * top], stack_f[2 * top + 1]
                 nodes += 1
-                found = True
                 break
-        if not found:
-            break
     return t_best, best_k, best_u, best_v, nodes, tested
-
-
-@numba.njit(cache=True, error_model="numpy")
-def kd_closest_hit(tree, stack_i, stack_f, ray, t_max):
-    """Nearest hit with 0 < t < t_max: (t, reference, u, v, nodes visited, triangles tested).
-
-    `stack_i` (STACK_SIZE,) int32 and `stack_f` (STACK_SIZE, 2) float32 are the caller's scratch: the
-    pending far cells (node, t_min, t_max) and, in stack_i[MAILBOX_BASE:], the mailbox.
-    """
-    return _kd_traverse(_borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.refs),
-                        _borrow(tree.leaf_tris), _borrow(tree.bounds), _borrow(stack_i), _borrow(stack_f),
-                        ray, t_max, False)
-
-
-@numba.njit(cache=True, error_model="numpy")
-def kd_any_hit(tree, stack_i, stack_f, ray, t_max):
-    """Whether anything lies at 0 < t < t_max: (hit, nodes visited, triangles tested)."""
-    t, k, u, v, nodes, tested = _kd_traverse(
-        _borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.refs), _borrow(tree.leaf_tris),
-        _borrow(tree.bounds), _borrow(stack_i), _borrow(stack_f), ray, t_max, True)
-    return k >= 0, nodes, tested
-

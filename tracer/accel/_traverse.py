@@ -47,7 +47,7 @@ from llvmlite import ir
 from numba.core import cgutils, types
 from numba.extending import intrinsic
 
-from tracer.accel._kdtraverse import kd_any_hit, kd_closest_hit
+from tracer.accel._kdtraverse import kd_traverse
 from tracer.accel._triangle import INF32, hit_triangle, make_ray
 from tracer.accel.tree import BVH, KDTREE, STACK_SIZE
 
@@ -503,7 +503,9 @@ def closest_hit(tree, stack_i, stack_f, ray, t_max):
         return _bvh_closest_hit(_borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.leaf_tris),
                                 _borrow(stack_i), _borrow(stack_f), ray, t_max)
     if tree.kind == KDTREE:
-        return kd_closest_hit(tree, stack_i, stack_f, ray, t_max)
+        return kd_traverse(_borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.refs),
+                           _borrow(tree.leaf_tris), _borrow(tree.bounds), _borrow(stack_i), _borrow(stack_f),
+                           ray, t_max, False)
     return _brute_closest_hit(_borrow(tree.leaf_tris), ray, t_max)
 
 
@@ -514,7 +516,10 @@ def any_hit(tree, stack_i, stack_f, ray, t_max):
         return _bvh_any_hit(_borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.leaf_tris),
                             _borrow(stack_i), _borrow(stack_f), ray, t_max)
     if tree.kind == KDTREE:
-        return kd_any_hit(tree, stack_i, stack_f, ray, t_max)
+        t, k, u, v, nodes, tris = kd_traverse(
+            _borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.refs), _borrow(tree.leaf_tris),
+            _borrow(tree.bounds), _borrow(stack_i), _borrow(stack_f), ray, t_max, True)
+        return k >= 0, nodes, tris
     return _brute_any_hit(_borrow(tree.leaf_tris), ray, t_max)
 
 

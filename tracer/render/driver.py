@@ -79,7 +79,7 @@ def render(scene: Scene, accel: str | Accel = "bvh", samples: int | None = None,
     """
     settings = resolve_settings(scene, samples=samples, width=width, height=height, bounces=bounces,
                                 seed=seed)
-    check_fits(scene.path, accel.kind if isinstance(accel, Accel) else parse_spec(accel)[0],
+    check_fits(scene.path, accel.kind if isinstance(accel, Accel) else ":".join(parse_spec(accel)),
                0 if isinstance(accel, Accel) else scene.triangles, settings.width, settings.height)
     if not isinstance(accel, Accel):
         kind, build = parse_spec(accel)
