@@ -607,16 +607,41 @@ def _aligned_records(count: int) -> tuple[np.ndarray, np.ndarray]:
     return words.view(np.float32), words
 
 
-def build_bvh(vertices: np.ndarray, faces: np.ndarray, build: str = "sah", leaf_size: int = 4) -> Tree:
-    """Build a BVH over the triangles `faces` (F, 3) int of `vertices` (V, 3) float; F >= 1."""
+def triangle_records(vertices: np.ndarray, faces: np.ndarray):
+    """The input every BVH build starts from: (vertices float32, faces int32, prim_f, prim_i, parts) with
+    prim_f / prim_i the (F, 8) float32 / int32 views of the 32-byte triangle records and parts the
+    per-thread bounds of `_prepare` (box in [0:6], box of the doubled centroids in [6:12])."""
     vertices = np.ascontiguousarray(vertices, dtype=np.float32)
     faces = np.ascontiguousarray(faces, dtype=np.int32)
-    n_tris = len(faces)
-    n_threads = numba.get_num_threads()
-    prim_i = np.empty((n_tris, 8), np.int32)
+    prim_i = np.empty((len(faces), 8), np.int32)
     prim_f = prim_i.view(np.float32)
-    parts = np.empty((n_threads, 12), np.float32)
+    parts = np.empty((numba.get_num_threads(), 12), np.float32)
     _prepare(vertices, faces, prim_f, prim_i, parts)
+    return vertices, faces, prim_f, prim_i, parts
+
+
+def finish_tree(node_f, node_i, root: int, n_inner: int, vertices, faces, prim_i) -> Tree:
+    """The `Tree` of a binary BVH (root at slot `root`, `n_inner` inner nodes, leaves over the triangle
+    records `prim_i` in order): collapsed to 4-wide records, leaf triangles gathered."""
+    wide_i = np.empty((max(n_inner, 1), RECORD_WORDS), np.int32)
+    n_records, need = _collapse(node_f, node_i, root, WIDTH, wide_i.view(np.float32), wide_i)
+    if need > STACK_SIZE:       # a pathological tree: two lanes per record need at most its depth
+        n_records, need = _collapse(node_f, node_i, root, 2, wide_i.view(np.float32), wide_i)
+        if need > STACK_SIZE:
+            raise RuntimeError(f"BVH deeper than the traversal stack ({need} > {STACK_SIZE} entries)")
+    out_f, out_i = _aligned_records(n_records)
+    out_i[:] = wide_i[:n_records]
+    n_tris = len(faces)
+    refs = np.empty(n_tris, np.int32)
+    leaf_tris = np.empty((n_tris, 9), np.float32)
+    _gather_triangles(vertices, faces, prim_i, refs, leaf_tris, numba.get_num_threads())
+    return Tree(BVH, out_f, out_i, refs, leaf_tris, scene_bounds(vertices))
+
+
+def build_bvh(vertices: np.ndarray, faces: np.ndarray, build: str = "sah", leaf_size: int = 4) -> Tree:
+    """Build a BVH over the triangles `faces` (F, 3) int of `vertices` (V, 3) float; F >= 1."""
+    vertices, faces, prim_f, prim_i, parts = triangle_records(vertices, faces)
+    n_tris = len(faces)
     root12 = np.concatenate([parts[:, [0, 1, 2]].min(axis=0), parts[:, [3, 4, 5]].max(axis=0),
                              parts[:, [6, 7, 8]].min(axis=0), parts[:, [9, 10, 11]].max(axis=0)])
     root12 = root12.astype(np.float32)
@@ -626,16 +651,4 @@ def build_bvh(vertices: np.ndarray, faces: np.ndarray, build: str = "sah", leaf_
     tasks, task_box, inner_top = _build_top(prim_f, prim_i, root12, int(leaf_size), use_sah, node_f, node_i)
     inner = np.zeros(len(tasks), np.int64)
     _build_subtrees(prim_f, prim_i, tasks, task_box, int(leaf_size), use_sah, node_f, node_i, inner)
-    n_inner = int(inner_top + inner.sum())
-    wide_i = np.empty((max(n_inner, 1), RECORD_WORDS), np.int32)
-    n_records, need = _collapse(node_f, node_i, 2 * n_tris, WIDTH, wide_i.view(np.float32), wide_i)
-    if need > STACK_SIZE:       # a pathological tree: two lanes per record need at most its depth
-        n_records, need = _collapse(node_f, node_i, 2 * n_tris, 2, wide_i.view(np.float32), wide_i)
-        if need > STACK_SIZE:
-            raise RuntimeError(f"BVH deeper than the traversal stack ({need} > {STACK_SIZE} entries)")
-    out_f, out_i = _aligned_records(n_records)
-    out_i[:] = wide_i[:n_records]
-    refs = np.empty(n_tris, np.int32)
-    leaf_tris = np.empty((n_tris, 9), np.float32)
-    _gather_triangles(vertices, faces, prim_i, refs, leaf_tris, n_threads)
-    return Tree(BVH, out_f, out_i, refs, leaf_tris, scene_bounds(vertices))
+    return finish_tree(node_f, node_i, 2 * n_tris, int(inner_top + inner.sum()), vertices, faces, prim_i)

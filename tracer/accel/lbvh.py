@@ -35,7 +35,7 @@ only a build that reorders triangles in 3D (or restructures treelets) would clos
 
 The binary nodes use the format of `tracer.accel.bvh` (box at words 0:6, link or first reference at 6,
 count at 7, the root at slot 2 F; a subtree over keys [s, e) writes its child pairs into [2 s, 2 e)),
-so `bvh._collapse` turns the tree into the same 4-wide records and every traversal kernel reads it
+so `bvh.finish_tree` collapses it into the same 4-wide records and every traversal kernel reads it
 unchanged.
 """
 import numba
@@ -45,15 +45,11 @@ from tracer.accel._traverse import WORKERS, fetch_add
 from tracer.accel.bvh import (
     EMPTY_HI,
     EMPTY_LO,
-    RECORD_WORDS,
     SLICES_PER_THREAD,
-    WIDTH,
-    _aligned_records,
-    _collapse,
-    _gather_triangles,
-    _prepare,
+    finish_tree,
+    triangle_records,
 )
-from tracer.accel.tree import BVH, STACK_SIZE, Tree, scene_bounds
+from tracer.accel.tree import Tree
 
 KEY_BITS = 63           # a key is a non-negative int64: code << index bits | triangle index
 MAX_AXIS_BITS = 21      # 3 x 21 = 63 bits of Morton code at most
@@ -229,21 +225,15 @@ def key_layout(n_triangles: int) -> tuple[int, int]:
 
 def build_lbvh(vertices: np.ndarray, faces: np.ndarray, build: str = "lbvh", leaf_size: int = 4) -> Tree:
     """Build a linear BVH over the triangles `faces` (F, 3) int of `vertices` (V, 3) float; F >= 1."""
-    vertices = np.ascontiguousarray(vertices, dtype=np.float32)
-    faces = np.ascontiguousarray(faces, dtype=np.int32)
+    vertices, faces, prim_f, prim_i, parts = triangle_records(vertices, faces)
     n_tris = len(faces)
-    n_threads = numba.get_num_threads()
-    prim_i = np.empty((n_tris, 8), np.int32)
-    prim_f = prim_i.view(np.float32)
-    parts = np.empty((n_threads, 12), np.float32)
-    _prepare(vertices, faces, prim_f, prim_i, parts)
     # The grid: a cube over the doubled centroids, its side the longest extent, 2^axis_bits cells a side.
     axis_bits, index_bits = key_layout(n_tris)
     origin2 = parts[:, 6:9].min(axis=0).astype(np.float64)
     extent = float((parts[:, 9:12].max(axis=0).astype(np.float64) - origin2).max())
     scale = (1 << axis_bits) * (1.0 - 1e-9) / extent if extent > 0.0 else 0.0
     keys = np.empty(n_tris, np.int64)
-    _morton_keys(prim_f, origin2, scale, axis_bits, index_bits, keys, n_threads)
+    _morton_keys(prim_f, origin2, scale, axis_bits, index_bits, keys, len(parts))
     keys.sort()
     root = 2 * n_tris
     node_i = np.empty((2 * n_tris + 1 + 2 * TOP_CAPACITY, 8), np.int32)
@@ -261,15 +251,4 @@ def build_lbvh(vertices: np.ndarray, faces: np.ndarray, build: str = "lbvh", lea
                     inner)
     _fill_boxes(node_f, node_i, root + 1, top_end, root)
     n_inner = (top_end - root - 1) // 2 + int(inner.sum())
-    wide_i = np.empty((max(n_inner, 1), RECORD_WORDS), np.int32)
-    n_records, need = _collapse(node_f, node_i, root, WIDTH, wide_i.view(np.float32), wide_i)
-    if need > STACK_SIZE:       # a pathological tree: two lanes per record need at most its depth
-        n_records, need = _collapse(node_f, node_i, root, 2, wide_i.view(np.float32), wide_i)
-        if need > STACK_SIZE:
-            raise RuntimeError(f"BVH deeper than the traversal stack ({need} > {STACK_SIZE} entries)")
-    out_f, out_i = _aligned_records(n_records)
-    out_i[:] = wide_i[:n_records]
-    refs = np.empty(n_tris, np.int32)
-    leaf_tris = np.empty((n_tris, 9), np.float32)
-    _gather_triangles(vertices, faces, sorted_i, refs, leaf_tris, n_threads)
-    return Tree(BVH, out_f, out_i, refs, leaf_tris, scene_bounds(vertices))
+    return finish_tree(node_f, node_i, root, n_inner, vertices, faces, sorted_i)
