@@ -11,19 +11,10 @@ pair alike; the figure is the median over pairs of the time ratio, with its quar
 import argparse
 import os
 import sys
-import time
 
 import numba
 import numpy as np
-
-HERE = os.path.dirname(os.path.abspath(__file__))
-RAYREF = os.path.normpath(os.path.join(HERE, "..", "..", "shared", "tools", "rayref"))
-
-
-def _seconds(fn) -> float:
-    start = time.perf_counter()
-    fn()
-    return time.perf_counter() - start
+from bench_rayref import _load_rayref, _timed  # beside this script: on the path when it is run
 
 
 def main(argv=None) -> int:
@@ -33,10 +24,7 @@ def main(argv=None) -> int:
     parser.add_argument("--kind", default="bvh", help="structure SPEC (default bvh)")
     parser.add_argument("--freq", type=int, default=224, help="icosphere frequency: 20*freq^2 triangles")
     args = parser.parse_args(argv)
-    if not os.path.isdir(RAYREF):
-        sys.exit(f"bench_scaling: the reference tool's scenes are not at {RAYREF}")
-    sys.path.insert(0, RAYREF)
-    import scenes
+    _, scenes = _load_rayref()
     threads = min(2, numba.config.NUMBA_NUM_THREADS)
     vertices, faces = scenes.displaced_icosphere(freq=args.freq)
     accel = build_accel(vertices, faces, kind=args.kind)
@@ -47,9 +35,9 @@ def main(argv=None) -> int:
         pairs = []
         for _ in range(args.pairs):
             numba.set_num_threads(1)
-            one = _seconds(lambda o=origins, d=directions: accel.intersect(o, d))
+            one = _timed(lambda o=origins, d=directions: accel.intersect(o, d))
             numba.set_num_threads(threads)
-            two = _seconds(lambda o=origins, d=directions: accel.intersect(o, d))
+            two = _timed(lambda o=origins, d=directions: accel.intersect(o, d))
             pairs.append((one, two))
         pairs = np.array(pairs)
         ratio = pairs[:, 0] / pairs[:, 1]
