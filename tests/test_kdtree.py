@@ -15,7 +15,7 @@ from trimesh.ray.ray_triangle import RayMeshIntersector
 
 import tracer
 from tracer.accel import kdtree
-from tracer.accel._kdbuild import LEAF
+from tracer.accel._kdbuild import INLINE_COUNT_BITS, INLINE_SHIFT, LEAF, META_WORD, SLOTS
 from tracer.accel.kdtree import binary_nodes, build_kdtree, cells, depth_limit, kdtree_stats, tree_from_binary
 from tracer.accel.tree import KDTREE, leaf_triangles
 
@@ -290,7 +290,7 @@ def test_tree_shape(build):
     # consecutive reference ranges, and packing the binary tree into records loses nothing.
     v, f = straddling_scene()
     tree = build_kdtree(v, f, build=build)
-    assert tree.kind == KDTREE and tree.nodes_i.shape[1] == 16
+    assert tree.kind == KDTREE and tree.nodes_i.shape[1] == 32
     nodes_f, nodes_i, depth, boxes = cells(tree)
     assert depth.max() <= depth_limit(len(f))
     leaves = nodes_i[:, 0] == LEAF
@@ -307,7 +307,7 @@ def test_tree_shape(build):
     repacked = tree_from_binary(nodes_i, tree.refs, v.astype(np.float32)[f], tree.bounds)
     assert np.array_equal(repacked.nodes_i, tree.nodes_i)
     assert len(tree.nodes_i) < np.count_nonzero(~leaves)          # several kd nodes per record
-    # One 64-byte record per cache line (64-byte lines: common practice on x86-64 and ARMv8 cores).
+    # A 128-byte record is two whole cache lines (64-byte lines: common practice on x86-64 and ARMv8).
     assert tree.nodes_i.ctypes.data % 64 == 0 and repacked.nodes_i.ctypes.data % 64 == 0
     assert tree.nodes_f.ctypes.data == tree.nodes_i.ctypes.data
 
@@ -426,6 +426,35 @@ def test_mailboxing_tests_each_triangle_once():
         assert hits.tris[i] <= distinct, f"ray {i}: {hits.tris[i]} tests, {distinct} distinct triangles"
         duplicated_rays += len(refs) > distinct
     assert duplicated_rays > n // 10, "too few rays cross duplicated references for the check to bite"
+
+
+def test_exactly_the_leaves_holding_duplicated_triangles_take_the_mailbox():
+    # The mailbox only matters for a triangle referenced by two leaves or more (common practice: a
+    # leaf is visited at most once per ray, so only duplicates can repeat); the build flags exactly the
+    # leaves holding one (layout: tracer.accel.kdtree), and the walk skips the mailbox for the others.
+    # Small separate triangles on a lattice (one leaf each, no duplicates) and a big one across them.
+    grid = np.stack(np.meshgrid(*[np.arange(8.0)] * 3, indexing="ij"), axis=-1).reshape(-1, 1, 3)
+    small = grid + np.array([[0.0, 0.0, 0.0], [0.2, 0.0, 0.0], [0.0, 0.2, 0.1]])
+    big = np.array([[[-0.5, -0.5, 3.5], [8.0, -0.5, 3.6], [-0.5, 8.0, 3.4]]])
+    corners = np.concatenate([small, big]).reshape(-1, 3)
+    v, f = corners, np.arange(len(corners)).reshape(-1, 3)
+    tree = build_kdtree(v, f, build="sah")
+    duplicated = np.bincount(tree.refs)[tree.refs] > 1
+    flags = []
+    for r in range(len(tree.nodes_i)):
+        record = tree.nodes_i[r].astype(np.int64)
+        if record[META_WORD] < 0:                                   # a leaf record
+            first, count, flag = record[SLOTS], record[SLOTS + 1], record[SLOTS + 2]
+            flags.append((first, count, flag))
+            continue
+        for link in record[SLOTS:]:
+            if link <= -2:                                          # a leaf kept in the link word
+                code = -2 - link
+                flags.append((code >> INLINE_SHIFT, code & 7, (code >> INLINE_COUNT_BITS) & 1))
+    assert sum(count for _, count, _ in flags) == len(tree.refs)     # every leaf seen once
+    assert any(flag for *_, flag in flags) and not all(flag for *_, flag in flags)
+    for first, count, flag in flags:
+        assert flag == int(duplicated[first:first + count].any())
 
 
 # ---------------------------------------------------------------------------------------------- hypothesis

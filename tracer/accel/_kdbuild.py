@@ -631,39 +631,50 @@ def stitch_subtrees(top, top_refs, subtrees, subtree_base, subtree_refs, subtree
     return nodes[:m].copy(), refs[:n_refs].copy()
 
 
-INLINE_COUNT_BITS = 3                   # a leaf of < 8 references fits in its parent's link word
-INLINE_FIRST_LIMIT = 1 << 27
+TREELET_LEVELS = 4                      # kd levels per record: 15 inner positions, 16 slots below them
+SLOTS = 1 << TREELET_LEVELS
+RECORD_WORDS = 2 * SLOTS                # 15 splits, the meta word, 16 slot links: 128 bytes
+META_WORD = SLOTS - 1
+INLINE_COUNT_BITS = 3                   # a leaf of < 8 references fits in its parent's link word ...
+INLINE_DUP_BIT = 1 << INLINE_COUNT_BITS  # ... with a flag: it holds a triangle referenced elsewhere too
+INLINE_SHIFT = INLINE_COUNT_BITS + 1
+INLINE_FIRST_LIMIT = 1 << 26            # -2 - (first << 4 | ...) stays an int32
 EMPTY_LINK = -1
 
 
 @numba.njit(cache=True, error_model="numpy")
-def _leaf_link(first, count):
-    """Link word of a leaf kept in its parent: -1 if empty, else -2 - (first << 3 | count)."""
-    if count == 0:
-        return EMPTY_LINK
-    return -2 - ((first << INLINE_COUNT_BITS) | count)
+def _any_duplicated(dup_ref, first, count):
+    for k in range(first, first + count):
+        if dup_ref[k]:
+            return 1
+    return 0
 
 
 @numba.njit(cache=True, error_model="numpy")
-def pack_records(binary):
-    """Pack the binary tree (M, 8) int32 of `build_kdtree_kernel` into treelet records (R, 16) int32.
+def _leaf_link(first, count, dup):
+    """Link word of a leaf kept in its parent: -1 if empty, else -2 - (first << 4 | dup << 3 | count)."""
+    if count == 0:
+        return EMPTY_LINK
+    return -2 - ((first << INLINE_SHIFT) | (dup * INLINE_DUP_BIT) | count)
 
-    Layout: `tracer.accel.kdtree`. Records are written depth-first, the first record of a treelet's
-    first child following it, so a ray going down the below side reads consecutive memory.
+
+@numba.njit(cache=True, error_model="numpy")
+def pack_records(binary, dup_ref):
+    """Pack the binary tree (M, 8) int32 of `build_kdtree_kernel` into treelet records (R, 32) int32;
+    dup_ref (refs,) bool marks the references whose triangle is referenced more than once.
+
+    Layout: `tracer.accel.kdtree`. Records are written depth-first, the record of a treelet's first slot
+    following it, so a ray going down the below sides reads consecutive memory.
     """
     n_binary = binary.shape[0]
-    records = np.zeros((n_binary + 1, 16), np.int32)
+    records = np.zeros((n_binary + 1, RECORD_WORDS), np.int32)
+    nan_bits = np.array([np.nan], np.float32).view(np.int32)[0]
     # Work items: binary node whose link is still to be written into records[item_record, item_word].
-    item_node = np.empty(n_binary + 16, np.int64)
-    item_record = np.empty(n_binary + 16, np.int64)
-    item_word = np.empty(n_binary + 16, np.int64)
-    position_node = np.empty(7, np.int64)
-    pending_node = np.empty(15, np.int64)
-    pending_word = np.empty(15, np.int64)
+    item_node = np.empty(n_binary + SLOTS, np.int64)
+    item_record = np.empty(n_binary + SLOTS, np.int64)
+    item_word = np.empty(n_binary + SLOTS, np.int64)
+    position_node = np.empty(SLOTS - 1, np.int64)
     n_records = 1
-    if binary[0, 0] == LEAF:
-        records[0, 0], records[0, 1], records[0, 2] = -1, binary[0, 2], binary[0, 3]
-        return records[:1].copy()
     item_node[0], item_record[0], item_word[0] = 0, -1, -1
     top = 1
     while top > 0:
@@ -673,58 +684,60 @@ def pack_records(binary):
         if parent >= 0:
             n_records += 1
             records[parent, word] = r
-        if binary[b, 0] == LEAF:                # a leaf too big to inline
-            records[r, 0], records[r, 1], records[r, 2] = -1, binary[b, 2], binary[b, 3]
+        if binary[b, 0] == LEAF:                # the root leaf, or a leaf too big to inline
+            first, count = binary[b, 2], binary[b, 3]
+            records[r, META_WORD] = -1
+            records[r, SLOTS], records[r, SLOTS + 1] = first, count
+            records[r, SLOTS + 2] = _any_duplicated(dup_ref, first, count)
             continue
-        kinds = 0
-        n_pending = 0
-        for p in range(7):
+        # Positions in heap order: a NaN split marks one that is not an inner node of this treelet.
+        meta = 0
+        for p in range(SLOTS - 1):
             position_node[p] = -1
         position_node[0] = b
-        for p in range(7):
+        for p in range(SLOTS - 1):
             node = position_node[p]
-            if node < 0:
+            if node < 0 or binary[node, 0] == LEAF:
+                records[r, p] = nan_bits
                 continue
-            if binary[node, 0] == LEAF:
-                kinds |= 3 << (2 * p)
-                first, count = binary[node, 2], binary[node, 3]
-                if count < (1 << INLINE_COUNT_BITS) and first < INLINE_FIRST_LIMIT:
-                    records[r, 1 + p] = _leaf_link(first, count)
-                else:
-                    pending_node[n_pending], pending_word[n_pending] = node, 1 + p
-                    n_pending += 1
-                continue
-            kinds |= binary[node, 0] << (2 * p)
-            records[r, 1 + p] = binary[node, 1]              # split position (float32 bits)
-            for side in range(2):
-                child = node + 1 if side == 0 else binary[node, 2]
-                if p < 3:
-                    position_node[2 * p + 1 + side] = child
+            meta |= binary[node, 0] << (2 * p)
+            records[r, p] = binary[node, 1]                 # split position (float32 bits)
+            if 2 * p + 2 < SLOTS - 1:
+                position_node[2 * p + 1] = node + 1
+                position_node[2 * p + 2] = binary[node, 2]
+        records[r, META_WORD] = meta
+        # Slots, last first so the first slot's record is written next: the node a slot's path ends at
+        # (a leaf above the bottom level covers a run of slots; the run's first slot holds it).
+        for s in range(SLOTS - 1, -1, -1):
+            node = b
+            link = EMPTY_LINK
+            for level in range(TREELET_LEVELS):
+                node = node + 1 if (s >> (TREELET_LEVELS - 1 - level)) & 1 == 0 else binary[node, 2]
+                if binary[node, 0] != LEAF and level < TREELET_LEVELS - 1:
                     continue
-                word_of_child = 8 + 2 * (p - 3) + side
-                first, count = binary[child, 2], binary[child, 3]
-                inline = count < (1 << INLINE_COUNT_BITS) and first < INLINE_FIRST_LIMIT
-                if binary[child, 0] == LEAF and inline:
-                    records[r, word_of_child] = _leaf_link(first, count)
-                else:
-                    pending_node[n_pending], pending_word[n_pending] = child, word_of_child
-                    n_pending += 1
-        records[r, 0] = kinds
-        for k in range(n_pending - 1, -1, -1):             # the first pending child is popped next
-            item_node[top], item_record[top], item_word[top] = pending_node[k], r, pending_word[k]
-            top += 1
+                if s & ((1 << (TREELET_LEVELS - 1 - level)) - 1) == 0:
+                    first, count = binary[node, 2], binary[node, 3]
+                    inline = count < (1 << INLINE_COUNT_BITS) and first < INLINE_FIRST_LIMIT
+                    if binary[node, 0] == LEAF and inline:
+                        link = _leaf_link(first, count, _any_duplicated(dup_ref, first, count))
+                    else:
+                        item_node[top], item_record[top], item_word[top] = node, r, SLOTS + s
+                        top += 1
+                break
+            records[r, SLOTS + s] = link
     return records[:n_records].copy()
 
 
 @numba.njit(cache=True, error_model="numpy")
 def unpack_records(records, binary):
-    """The binary tree of packed `records` into `binary` (M, 8) int32, M large enough (15 per record):
+    """The binary tree of packed `records` into `binary` (M, 8) int32, M large enough (31 per record):
     depth-first, below child = node + 1, inner i[0] = axis, f[1] = split, i[2] = above child; leaf
     i[0] = 3, i[2] = first reference, i[3] = count (empty leaves included). Returns M."""
-    # Stack items: (record, position) of a node inside a record, or (-1, link word).
-    stack_r = np.empty(256, np.int64)
-    stack_p = np.empty(256, np.int64)
-    stack_parent = np.empty(256, np.int64)
+    splits = records.view(np.float32)
+    # Stack items: (record, heap position) of a node inside a record, or (-1, link word).
+    stack_r = np.empty(1024, np.int64)
+    stack_p = np.empty(1024, np.int64)
+    stack_parent = np.empty(1024, np.int64)
     stack_r[0], stack_p[0], stack_parent[0] = 0, 0, -1
     top, m = 1, 0
     while top > 0:
@@ -742,24 +755,25 @@ def unpack_records(records, binary):
                 binary[node, 0] = LEAF
                 if link < EMPTY_LINK:
                     code = -2 - link
-                    binary[node, 2] = code >> INLINE_COUNT_BITS
+                    binary[node, 2] = code >> INLINE_SHIFT
                     binary[node, 3] = code & ((1 << INLINE_COUNT_BITS) - 1)
                 continue
             r, p = link, 0
-        if records[r, 0] < 0:
-            binary[node, 0], binary[node, 2], binary[node, 3] = LEAF, records[r, 1], records[r, 2]
+        if records[r, META_WORD] < 0:
+            binary[node, 0], binary[node, 2], binary[node, 3] = LEAF, records[r, SLOTS], records[r, SLOTS + 1]
             continue
-        binary[node, 0] = (records[r, 0] >> (2 * p)) & 3
-        binary[node, 1] = records[r, 1 + p]
+        binary[node, 0] = (records[r, META_WORD] >> (2 * p)) & 3
+        binary[node, 1] = records[r, p]
+        level = 0
+        while (2 << level) - 1 <= p:
+            level += 1
         for side in (1, 0):                                # above pushed first, below popped next
-            if p < 3:
-                c = 2 * p + 1 + side
-                if (records[r, 0] >> (2 * c)) & 3 == 3:
-                    stack_r[top], stack_p[top] = -1, records[r, 1 + c]
-                else:
-                    stack_r[top], stack_p[top] = r, c
-            else:
-                stack_r[top], stack_p[top] = -1, records[r, 8 + 2 * (p - 3) + side]
+            c = 2 * p + 1 + side
+            if c < SLOTS - 1 and not np.isnan(splits[r, c]):
+                stack_r[top], stack_p[top] = r, c
+            else:                                          # a slot run: its first slot holds the link
+                first_slot = (c - ((2 << level) - 1)) << (TREELET_LEVELS - 1 - level)
+                stack_r[top], stack_p[top] = -1, records[r, SLOTS + first_slot]
             stack_parent[top] = node if side == 1 else -1
             top += 1
     return m

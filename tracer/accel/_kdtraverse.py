@@ -3,96 +3,212 @@
 The classic stack traversal (Jansen 1986; Havran (2000), "Heuristic Ray Shooting Algorithms", PhD thesis,
 Czech Technical University in Prague; Pharr, Jakob & Humphreys, "Physically Based Rendering", 3rd ed.,
 section 4.4, from memory): the ray is clipped to the scene box with the slab test (Kay & Kajiya 1986),
-giving the interval [t_min, t_max] of the root cell; at an inner node the plane distance
-t_split = (split - o[axis]) / d[axis] decides whether the interval lies on the near side, the far side,
-or both; in the last case the far child is pushed with [t_split, t_max] and the near child visited with
-[t_min, t_split]. Cells are visited in ray order, so the walk ends as soon as the closest hit so far
-lies before every pending cell: popped cells starting beyond the hit are dropped. That is the early
-exit: with the disjoint intervals of a kd-tree it ends the walk once the hit lies inside the current
-cell (t_hit <= t_max of the cell).
+giving the interval [t_min, t_max] of the root cell; a split plane at t_split = (split - o[axis]) / d[axis]
+divides a cell's interval between its two children; cells are visited in ray order, the farther ones
+waiting on a stack with their intervals, and the walk ends as soon as the closest hit so far lies before
+every pending cell: popped cells starting beyond the hit are dropped. That is the early exit: with the
+disjoint intervals of a kd-tree it ends the walk once the hit lies inside the current cell.
 
-The tree is read as treelet records (layout: `tracer.accel.kdtree`): a walk position is an entry code,
-record * 8 + position for a node inside a record, or a leaf link (< -1); a ray walks up to three levels
-inside one record before it loads the next; empty leaves are never visited and small leaves sit in
-their parent's link word.
+Four levels at a time. The tree is read as treelet records (layout: `tracer.accel.kdtree`): 15 inner
+positions in heap order above 16 slots, each slot the cell at the end of one path of four below / above
+choices (a leaf met higher up covers a run of slots; the run's first slot holds it). Instead of deciding
+the levels one after another (load the split, subtract, multiply, compare, pick the child: a chain of
+dependent steps per level), `_treelet` computes the 15 plane distances at once and gives every slot its
+interval as 16-lane vector operations: a slot's cell is the intersection of the half-spaces on its path,
+so its interval along the ray is [max(t_min, t_split of the planes it lies beyond), min(t_max, t_split of
+the planes it lies before)]: the below side of a plane lies before t_split when d[axis] > 0 (or the ray
+is parallel with its origin below), after it when d[axis] < 0. A slot is entered when its interval is
+not empty and its link is not an empty leaf. The entered slots are visited front to back: the nearest
+next, the others pushed farthest first (and their records or first triangles prefetched: 4% on
+diffuse-bounce rays). The front-to-back order is the tree order with the near side
+first at each plane, so a slot's rank is its index with each level's bit flipped where that level's
+plane has d[axis] < 0: no sort of distances. (The same walk one level at a time measured 1.5-1.9x
+slower on the 1M-triangle demo: `benchmarks/bench_kdtree.py`.)
 
-The per-level step is the common case first: one multiplication gives t_split, and the near / far /
-both choice and the two child entries are 0/1 arithmetic and selects, not branches (the outcome is as
-good as random from node to node; measured 15% for the choice alone). The exact case analysis below
-runs only at t_split exactly 0, or at every level of a ray with an infinite component of 1/d (an
-axis-parallel ray): a branch the predictor learns. The push is a store that is always made and a stack
-top advanced by 0 or 1.
-
-Edge cases (common practice, the classic kd-tree pitfalls), in `_exact_sides`:
-- a ray parallel to the split plane (d[axis] = 0) stays on its side; if it lies in the plane it visits
-  both children over the same interval, because a triangle touching the plane from either side can be
-  hit (the box-face rays). Such a push shares its t_min with the cell, which is why the pop loop skips
-  rather than stops;
-- a ray starting on the plane moves into one side; the side it leaves is still visited over [0, 0]
-  when the origin is in the cell, since a triangle lying in the plane may be stored there (brute force
-  finds it at t = 0+, and so must we);
-- the sign of t_split is exact (p - o, then a multiplication or, when 1/d overflows, a division), so
-  "behind the origin" is decided exactly; t_split within a relative `SLACK` of the cell's ends counts as
-  inside the interval (both children are visited), so rounding of t cannot skip a cell that the ray
-  enters by a sliver at a corner;
+Edge cases (common practice, the classic kd-tree pitfalls), all in the interval rule:
+- t_split = (split - o) * (1/d), or (split - o) / d for a ray with a 1/d that overflows (d subnormal or
+  0, an axis-parallel ray): the sign of t_split, and whether it is 0, are exact;
+- a ray parallel to a plane (d[axis] = +-0) gets t_split = +-inf: the side holding the origin keeps the
+  whole interval and the other side gets none (the sign of the zero is the side: -0 counts as
+  negative, consistently in t_split and in the before / after choice); a ray lying in the plane gets
+  0 * inf = NaN, which bounds neither side: both children are visited over the whole interval, since a
+  triangle touching the plane from either side can be hit (the box-face rays);
+- a ray starting on a plane (t_split = 0) in the current cell visits the side it leaves over [0, 0]:
+  a triangle lying in the plane may be stored there (brute force finds it at t = 0+, and so must we);
+- an interval counts as not empty while t_lo <= t_hi (1 + SLACK), so rounding of t cannot skip a cell
+  that the ray enters by a sliver at a corner;
 - triangles lying in a split plane are stored on one side by the build; a ray crossing the plane visits
   both sides, and one lying in the plane cannot hit them (a flat triangle seen edge-on).
+An unused position's split is NaN: t_split is NaN and bounds nothing, like the plane a ray lies in.
 
 Mailboxing (Amanatides & Woo 1987, "A Fast Voxel Traversal Algorithm for Ray Tracing", Eurographics;
-here with a ray-local list instead of a per-triangle ray id): the ids of the last `MAILBOX_SIZE`
-triangles tested by this ray sit in the top of the ray's scratch (the build keeps the depth, hence the
-stack, below `MAILBOX_BASE`); a reference whose triangle is in the list is skipped, so a triangle
-duplicated across leaves is tested once (for the first MAILBOX_SIZE triangles a ray tests; later ones
-are remembered in a ring).
+here with a ray-local list instead of a per-triangle ray id): a leaf that holds a triangle referenced by
+another leaf too is flagged by the build (a bit of its link word); its references go through the list of
+the last `MAILBOX_SIZE` duplicated triangles this ray tested (the top of the ray's scratch, above the
+stack), and one already in the list is skipped, so a triangle duplicated across leaves is tested once.
+Other references cannot repeat within one ray (each cell is visited at most once) and skip the list.
+(Checking every reference cost 9% on camera rays, for 4% of the tests saved.)
 
-Counting: "nodes visited" counts the records loaded (the root, every record the walk moves into, and a
-pop, which reloads one) plus the leaves kept in links, so it measures memory traffic like the BVH's
-count of 4-wide records; an empty leaf is never visited and counts nothing. "Triangles tested" counts
-the triangle tests actually made (a mailboxed repeat is not one).
-
-Speed (per-ray walk; `benchmarks/bench_kdtree.py` on the 1M-triangle demo): the walk is a chain of
-dependent steps per level (load the split, subtract, multiply, compare, pick the child), so the code
-keeps that chain short: the ray's origin and 1/d stay in registers and are picked by the axis with
-selects (a load indexed by the axis sat on the chain), and both children's entries are read before the
-plane test decides between them. A stream of several rays in flight per thread with prefetching (as the
-BVH's `intersect_rays` has) was written and measured slower than this walk by 10-40% on both camera and
-diffuse-bounce rays (the records in use stay in cache, and switching rays costs state traffic and
-branch history), so `Accel.intersect` runs this walk too.
+Counting: "nodes visited" counts the records and leaves the walk enters (the root, each one moved to, and
+each pop), so it measures memory traffic like the BVH's count of 4-wide records; an empty leaf is never
+entered and counts nothing. "Triangles tested" counts the triangle tests actually made (a mailboxed
+repeat is not one).
 """
 import numba
 import numpy as np
-from numba.core import types
+from llvmlite import ir
+from numba.core import cgutils, types
 from numba.extending import intrinsic
 
-from tracer.accel._kdbuild import EMPTY_LINK as EMPTY
-from tracer.accel._kdbuild import INLINE_COUNT_BITS
+from tracer.accel._kdbuild import (
+    EMPTY_LINK,
+    INLINE_COUNT_BITS,
+    INLINE_SHIFT,
+    META_WORD,
+    RECORD_WORDS,
+    SLOTS,
+    TREELET_LEVELS,
+)
 from tracer.accel._triangle import INF32, hit_triangle
 from tracer.accel.tree import STACK_SIZE
 
 F32 = np.float32
 MAILBOX_SIZE = 64                       # a power of two (ring index by mask)
 MAILBOX_BASE = STACK_SIZE - MAILBOX_SIZE
-MAX_TRAVERSAL_DEPTH = MAILBOX_BASE      # the build refuses deeper trees
-SLACK = F32(1e-6)                       # relative tolerance on t_split against the cell's interval
-DONE = EMPTY                            # entry code of a finished walk (no walk ever enters an empty leaf)
-RECORD_WORDS = 16                       # int32 words of a treelet record (tracer.accel.kdtree)
-# Kind bits (2 per position) of positions 7..14, the children of the record's bottom level: always links.
-BOTTOM_LINKS = sum(3 << (2 * c) for c in range(7, 15))
+MAX_TRAVERSAL_DEPTH = 64                # the build refuses deeper trees
+# A record pushes at most SLOTS - 1 cells, and a leaf at depth D lies under ceil(D / 4) records.
+assert -(-MAX_TRAVERSAL_DEPTH // TREELET_LEVELS) * (SLOTS - 1) <= MAILBOX_BASE
+SCRATCH = 2 * MAILBOX_BASE              # stack_f words (flat) of the slot intervals: t_lo x 16, t_hi x 16
+SLACK = 1e-6                            # relative tolerance of an interval's emptiness test
+DONE = EMPTY_LINK                       # entry code of a finished walk (no walk ever enters an empty leaf)
 
 
 @intrinsic
 def _address(typingctx, array):
     """The data pointer of a C-contiguous array: indexed as a flat array, with no reference count and no
     negative-index check (an index is never negative here). `kd_traverse` reads its arrays this way:
-    one instruction less per access on the chain of each level, and no reference counting of arrays
-    passed to inlined helpers (numba cannot drop the pair around a helper with loops: it cost a dozen
-    calls per step in a trial)."""
+    one instruction less per access, and no reference counting of arrays passed to inlined helpers."""
     if not (isinstance(array, types.Array) and array.layout == "C"):
         return None
     sig = types.CPointer(array.dtype)(array)
 
     def codegen(context, builder, signature, args):
         return context.make_array(signature.args[0])(context, builder, args[0]).data
+
+    return sig, codegen
+
+
+@intrinsic
+def _prefetch(typingctx, pointer, index):
+    """Hint the CPU to load the cache line of pointer[index] (read, keep in all levels); no effect on
+    results. The pushed cells' records and triangles: loaded while the nearer cells are walked."""
+    if not isinstance(pointer, types.CPointer):
+        return None
+    sig = types.void(pointer, types.int64)
+
+    def codegen(context, builder, signature, args):
+        pointer, index = args
+        i8p, i32 = ir.IntType(8).as_pointer(), ir.IntType(32)
+        prefetch = cgutils.get_or_insert_function(
+            builder.module, ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32]), "llvm.prefetch.p0i8")
+        builder.call(prefetch, [builder.bitcast(builder.gep(pointer, [index]), i8p), i32(0), i32(3), i32(1)])
+        return context.get_dummy_value()
+
+    return sig, codegen
+
+
+@intrinsic
+def _bit_count(typingctx, x, lowest):
+    """With `lowest`, the index of the lowest set bit of x (x != 0), else the number of set bits."""
+    sig = types.int64(types.int64, types.boolean)
+
+    def codegen(context, builder, signature, args):
+        x, lowest = args
+        i64 = ir.IntType(64)
+        ctpop = cgutils.get_or_insert_function(builder.module, ir.FunctionType(i64, [i64]), "llvm.ctpop.i64")
+        cttz = cgutils.get_or_insert_function(builder.module, ir.FunctionType(i64, [i64, ir.IntType(1)]),
+                                              "llvm.cttz.i64")
+        return builder.select(lowest, builder.call(cttz, [x, ir.Constant(ir.IntType(1), 1)]),
+                              builder.call(ctpop, [x]))
+
+    return sig, codegen
+
+
+@intrinsic
+def _treelet(typingctx, nodes_f, r, ox, oy, oz, qx, qy, qz, divide, t_lo, t_hi, scratch):
+    """The 16 slots of treelet record r for a ray in the cell [t_lo, t_hi], as 16-lane vector operations.
+
+    (q = 1/d, or d itself with `divide` when some 1/d overflows.) Per position p: t_p = (split_p - o)
+    * (1/d) (or / d) on p's axis. Per slot: the interval [lo, hi], narrowed by each of its four path
+    planes: by t_p from below when the slot lies beyond the plane (below side and d < 0, or above side
+    and d > 0; the sign bit of q, so -0 counts as negative), else from above (a NaN t_p narrows
+    nothing). Writes lo to scratch[SCRATCH:SCRATCH + 16] and hi to the next 16 words; returns
+    entered | negative << 16: bit s of `entered` set when slot s's interval is not empty (lo <= hi
+    (1 + SLACK)) and its link is not an empty leaf, bit p of `negative` when position p's q < 0.
+    Built as LLVM vector IR because numba does not run LLVM's SLP vectorizer.
+    """
+    f32 = types.float32
+    sig = types.int64(nodes_f, types.int64, f32, f32, f32, f32, f32, f32, types.boolean, f32, f32, scratch)
+
+    def codegen(context, builder, signature, args):
+        nodes, r, ox, oy, oz, qx, qy, qz, divide, t_lo, t_hi, scratch = args
+        i32, i64 = ir.IntType(32), ir.IntType(64)
+        vf, vi = ir.VectorType(ir.FloatType(), SLOTS), ir.VectorType(i32, SLOTS)
+        vb = ir.VectorType(ir.IntType(1), SLOTS)
+        record = builder.gep(nodes, [builder.mul(r, ir.Constant(i64, RECORD_WORDS))])
+
+        def at(pointer, word, ty):      # the value of type ty at word `word` of `pointer`
+            return builder.bitcast(builder.gep(pointer, [ir.Constant(i64, word)]), ty.as_pointer())
+
+        def lanes(ty, value):
+            return ir.Constant(ty, value if isinstance(value, list) else [value] * SLOTS)
+
+        def splat(x, ty):
+            one = builder.insert_element(ir.Constant(ty, ir.Undefined), x, i32(0))
+            return builder.shuffle_vector(one, one, lanes(vi, 0))
+
+        def pick(v, lanes_of):          # per slot, the lane of its path's position at one level
+            return builder.shuffle_vector(v, ir.Constant(v.type, ir.Undefined), lanes(vi, lanes_of))
+
+        splits = builder.load(at(record, 0, vf), align=4)
+        links = builder.load(at(record, SLOTS, vi), align=4)
+        meta = builder.load(at(record, META_WORD, i32))
+        # Axis of each position (2 bits of the meta word; lane 15, the meta word itself, is never used).
+        axis = builder.and_(builder.lshr(splat(meta, vi), lanes(vi, [2 * min(p, 14) for p in range(SLOTS)])),
+                            lanes(vi, 3))
+        on_x = builder.icmp_signed("==", axis, lanes(vi, 0))
+        on_y = builder.icmp_signed("==", axis, lanes(vi, 1))
+        o = builder.select(on_x, splat(ox, vf), builder.select(on_y, splat(oy, vf), splat(oz, vf)))
+        q = builder.select(on_x, splat(qx, vf), builder.select(on_y, splat(qy, vf), splat(qz, vf)))
+        offset = builder.fsub(splits, o)
+        with builder.if_else(divide) as (by_d, by_inverse):
+            with by_d:
+                t_div = builder.fdiv(offset, q)
+                from_div = builder.basic_block
+            with by_inverse:
+                t_mul = builder.fmul(offset, q)
+                from_mul = builder.basic_block
+        t = builder.phi(vf)
+        t.add_incoming(t_div, from_div)
+        t.add_incoming(t_mul, from_mul)
+        negative = builder.icmp_signed("<", builder.bitcast(q, vi), lanes(vi, 0))
+        lo, hi = splat(t_lo, vf), splat(t_hi, vf)
+        for level in range(TREELET_LEVELS):
+            lanes_of = [(1 << level) - 1 + (s >> (TREELET_LEVELS - level)) for s in range(SLOTS)]
+            side = [(s >> (TREELET_LEVELS - 1 - level)) & 1 for s in range(SLOTS)]
+            t_level = pick(t, lanes_of)
+            beyond = builder.xor(pick(negative, lanes_of), lanes(vb, side))
+            lo = builder.select(builder.and_(beyond, builder.fcmp_ordered(">", t_level, lo)), t_level, lo)
+            hi = builder.select(builder.and_(builder.not_(beyond), builder.fcmp_ordered("<", t_level, hi)),
+                                t_level, hi)
+        not_empty = builder.fcmp_ordered("<=", lo, builder.fmul(hi, lanes(vf, 1.0 + SLACK)))
+        entered = builder.and_(not_empty, builder.icmp_signed("!=", links, lanes(vi, EMPTY_LINK)))
+        builder.store(lo, at(scratch, SCRATCH, vf), align=4)
+        builder.store(hi, at(scratch, SCRATCH + SLOTS, vf), align=4)
+        mask_type = ir.IntType(SLOTS)
+        entered_bits = builder.zext(builder.bitcast(entered, mask_type), i64)
+        negative_bits = builder.zext(builder.bitcast(negative, mask_type), i64)
+        return builder.or_(entered_bits, builder.shl(negative_bits, ir.Constant(i64, SLOTS)))
 
     return sig, codegen
 
@@ -112,60 +228,14 @@ def _slab(lo, hi, o, d, t0, t1):
 @numba.njit(cache=True, error_model="numpy", inline="always")
 def _root_interval(ray, t_max, bounds):
     """The root cell's interval: the slab test per axis (Kay & Kajiya 1986), parallel axes by position.
-    Returns (entry, t_lo, t_hi): the root, or DONE when the ray misses the scene box."""
+    Returns (entry, t_lo, t_hi): the root record 0, or DONE when the ray misses the scene box."""
     o, d = ray[0], ray[1]
     t_lo, t_hi = F32(0.0), t_max
     t_lo, t_hi = _slab(bounds[0], bounds[3], o[0], d[0], t_lo, t_hi)
     t_lo, t_hi = _slab(bounds[1], bounds[4], o[1], d[1], t_lo, t_hi)
     t_lo, t_hi = _slab(bounds[2], bounds[5], o[2], d[2], t_lo, t_hi)
-    entry = 0 if t_lo <= t_hi * (F32(1.0) + SLACK) else DONE
+    entry = 0 if t_lo <= t_hi * (F32(1.0) + F32(SLACK)) else DONE
     return entry, t_lo, t_hi
-
-
-@numba.njit(cache=True, error_model="numpy", inline="always")
-def _general_sides(t_split, near, t_lo, t_hi):
-    """(first side, both, first_hi) for a plane at t_split != 0 (first = near or far side; 0 below, 1
-    above): near side only when the plane is behind the ray or beyond the cell, far side only when the
-    ray crossed it before the cell, else both, the near one first over [t_lo, t_split]."""
-    near_only = np.int64(t_split <= F32(0.0)) | np.int64(t_split > t_hi * (F32(1.0) + SLACK))
-    crossed = np.int64(t_split < t_lo * (F32(1.0) - SLACK))
-    both = (1 - near_only) & (1 - crossed)
-    first = near ^ ((1 - near_only) & crossed)
-    return first, both, (t_split if both else t_hi)
-
-
-@numba.njit(cache=True, error_model="numpy")
-def _exact_sides(oa, da, split, inv_a, t_lo, t_hi):
-    """The full case analysis of a plane (see the module docstring): (first side, both, first_hi,
-    second_lo); when both, the second side is the other one, over [second_lo, t_hi]."""
-    if da == F32(0.0):
-        if oa < split:
-            return 0, 0, t_hi, t_lo
-        if oa > split:
-            return 1, 0, t_hi, t_lo
-        return 0, 1, t_hi, t_lo                     # the ray lies in the plane: both sides
-    if oa == split:
-        t_split = F32(0.0)
-    else:
-        t_split = (split - oa) * inv_a if abs(inv_a) != INF32 else (split - oa) / da
-    near = np.int64(oa > split) | (np.int64(oa == split) & np.int64(da > F32(0.0)))
-    if t_split == F32(0.0) and t_lo == F32(0.0):
-        # The origin lies on the plane, in this cell: the side it leaves is touched at t = 0 only, but a
-        # triangle lying in the plane may be stored there (hit at 0+).
-        return 1 - near, 1, t_lo, t_lo
-    first, both, first_hi = _general_sides(t_split, near, t_lo, t_hi)
-    return first, both, first_hi, t_split
-
-
-@numba.njit(cache=True, error_model="numpy", inline="always")
-def _child_entry(nodes_i, r, links, c):
-    """Entry code of position c (1..14) of record r (`nodes_i` its flat words): r * 8 + c for a node in
-    the same record, link * 8 for another record, the link itself (< -1) for an inline leaf, -1 for an
-    empty leaf. The word of position c's link is 1 + c for c < 7 and 8 + 2 (p - 3) + side = 1 + c for
-    the children of p >= 3."""
-    link = np.int64(nodes_i[r * RECORD_WORDS + 1 + c])
-    outside = link * 8 if link >= 0 else link
-    return outside if (links >> (2 * c)) & 3 == 3 else r * 8 + c
 
 
 @numba.njit(cache=True, error_model="numpy")
@@ -174,80 +244,86 @@ def kd_traverse(nodes_f, nodes_i, refs, leaf_tris, bounds, stack_i, stack_f, ray
     when nothing lies at 0 < t < t_max (with `any_hit`, the walk stops at the first hit found).
 
     `stack_i` (STACK_SIZE,) int32 and `stack_f` (STACK_SIZE, 2) float32 are the caller's scratch: the
-    pending far cells (entry, t_min, t_max) and, in stack_i[MAILBOX_BASE:], the mailbox.
-    `_traverse.closest_hit` / `any_hit` call it with borrowed arrays (`_traverse._borrow`). Inside, the
-    arrays are read through their data pointers (`_address`), as flat arrays.
+    pending cells (entry, t_min, t_max), in stack_i[MAILBOX_BASE:] the mailbox and in stack_f's words
+    from SCRATCH the slot intervals. `_traverse.closest_hit` / `any_hit` call it with borrowed arrays
+    (`_traverse._borrow`). Inside, the arrays are read through their data pointers (`_address`).
     """
     entry, t_lo, t_hi = _root_interval(ray, t_max, bounds)
-    # Per axis: origin, direction and the exact 1/d (inf when it overflows, and then t_split divides;
-    # make_ray's 1/d is clamped for the slab test).
     (ox, oy, oz), (dx, dy, dz) = ray[0], ray[1]
     ix, iy, iz = F32(1.0) / dx, F32(1.0) / dy, F32(1.0) / dz
-    # A ray with an infinite 1/d (an axis-parallel one) takes the exact case analysis at every level.
-    # (This use of ix, iy, iz also keeps LLVM from turning the per-level pick of 1/d into a division.)
-    parallel = abs(ix) == INF32 or abs(iy) == INF32 or abs(iz) == INF32
+    divide = abs(ix) == INF32 or abs(iy) == INF32 or abs(iz) == INF32
+    qx, qy, qz = (dx, dy, dz) if divide else (ix, iy, iz)
     n_refs = leaf_tris.shape[0]
     nodes_f, nodes_i, refs, stack_i, stack_f = (_address(nodes_f), _address(nodes_i), _address(refs),
                                                 _address(stack_i), _address(stack_f))
-    top, t_best, best_k, best_u, best_v, nodes, tested = 0, t_max, -1, F32(0.0), F32(0.0), 1, 0
-    triangles = numba.carray(_address(leaf_tris), (n_refs, 9))
+    leaf_words = _address(leaf_tris)
+    triangles = numba.carray(leaf_words, (n_refs, 9))
+    top, t_best, best_k, best_u, best_v, nodes, tested, boxed = 0, t_max, -1, F32(0.0), F32(0.0), 1, 0, 0
     while entry != DONE:
-        first_ref, count = 0, 0
+        first_ref, count, duplicated = 0, 0, 0
         if entry >= 0:
-            r, p = entry >> 3, entry & 7
-            kinds = np.int64(nodes_i[r * RECORD_WORDS])
-            if kinds >= 0:
-                links = kinds | BOTTOM_LINKS
-                while True:
-                    axis = (kinds >> (2 * p)) & 3
-                    split = nodes_f[r * RECORD_WORDS + 1 + p]
-                    # Selects rather than a load at the axis: a shorter chain from one level to the next.
-                    oa = ox if axis == 0 else (oy if axis == 1 else oz)
-                    inv_a = ix if axis == 0 else (iy if axis == 1 else iz)
-                    t_split = (split - oa) * inv_a
-                    if parallel or t_split == F32(0.0):
-                        da = dx if axis == 0 else (dy if axis == 1 else dz)
-                        first, both, first_hi, second_lo = _exact_sides(oa, da, split, inv_a, t_lo, t_hi)
-                    else:
-                        first, both, first_hi = _general_sides(t_split, np.int64(oa > split), t_lo, t_hi)
-                        second_lo = t_split
-                    # Both children's entries are read before the plane test decides (they depend on the
-                    # position only, so the loads overlap the arithmetic) and picked by selects.
-                    below = _child_entry(nodes_i, r, links, 2 * p + 1)
-                    above = _child_entry(nodes_i, r, links, 2 * p + 2)
-                    first_entry = above if first else below
-                    second_entry = (below if first else above) if both else EMPTY
-                    # Empty leaves are never visited: an empty first side hands over to the second; the
-                    # second is pushed when both are there (the store is made anyway, top moves by 0 or 1).
-                    first_empty = first_entry == EMPTY
-                    stack_i[top] = second_entry
-                    stack_f[2 * top] = second_lo
-                    stack_f[2 * top + 1] = t_hi
-                    top += np.int64(not first_empty) & np.int64(second_entry != EMPTY)
-                    entry = second_entry if first_empty else first_entry
-                    t_lo = second_lo if first_empty else t_lo
-                    t_hi = t_hi if first_empty else first_hi
-                    if entry >> 3 != r:             # out of the record: a link, a leaf, or nothing (< 0)
-                        break
-                    p = entry & 7
-                if entry != EMPTY:
-                    nodes += 1                          # another record, or a leaf kept in a link
-                    continue
-            else:
-                first_ref, count = nodes_i[r * RECORD_WORDS + 1], nodes_i[r * RECORD_WORDS + 2]
+            word = entry * RECORD_WORDS
+            if nodes_i[word + META_WORD] >= 0:
+                bits = _treelet(nodes_f, entry, ox, oy, oz, qx, qy, qz, divide, t_lo, t_hi, stack_f)
+                entered = bits & ((1 << SLOTS) - 1)
+                if entered != 0:
+                    links = word + SLOTS
+                    if entered & (entered - 1) == 0:            # one slot: no stack
+                        s = _bit_count(entered, True)
+                        entry = np.int64(nodes_i[links + s])
+                        t_lo, t_hi = stack_f[SCRATCH + s], stack_f[SCRATCH + SLOTS + s]
+                        nodes += 1
+                        continue
+                    # Front-to-back rank: the slot index with each level's bit flipped where that
+                    # level's plane has d < 0. Push all entered slots by rank, farthest lowest.
+                    negative = bits >> SLOTS
+                    ranks, ranked = 0, 0
+                    rest = entered
+                    while rest != 0:
+                        s = _bit_count(rest, True)
+                        rest &= rest - 1
+                        flips = 0
+                        for level in range(TREELET_LEVELS):
+                            position = (1 << level) - 1 + (s >> (TREELET_LEVELS - level))
+                            flips |= ((negative >> position) & 1) << (TREELET_LEVELS - 1 - level)
+                        rank = s ^ flips
+                        ranked |= 1 << rank
+                        ranks |= rank << (TREELET_LEVELS * s)
+                    rest = entered
+                    while rest != 0:
+                        s = _bit_count(rest, True)
+                        rest &= rest - 1
+                        rank = (ranks >> (TREELET_LEVELS * s)) & (SLOTS - 1)
+                        slot = top + _bit_count(ranked >> (rank + 1), False)
+                        link = np.int64(nodes_i[links + s])
+                        stack_i[slot] = link
+                        if link >= 0:                           # its record: two cache lines
+                            _prefetch(nodes_i, link * RECORD_WORDS)
+                            _prefetch(nodes_i, link * RECORD_WORDS + RECORD_WORDS // 2)
+                        else:                                   # its leaf's first triangle
+                            _prefetch(leaf_words, ((-2 - link) >> INLINE_SHIFT) * 9)
+                        stack_f[2 * slot] = stack_f[SCRATCH + s]
+                        stack_f[2 * slot + 1] = stack_f[SCRATCH + SLOTS + s]
+                    top += _bit_count(entered, False)
+            else:                                               # a leaf too big for a link word
+                first_ref, count = nodes_i[word + SLOTS], nodes_i[word + SLOTS + 1]
+                duplicated = nodes_i[word + SLOTS + 2]
         else:
             code = -2 - entry
-            first_ref, count = code >> INLINE_COUNT_BITS, code & ((1 << INLINE_COUNT_BITS) - 1)
+            first_ref, count = code >> INLINE_SHIFT, code & ((1 << INLINE_COUNT_BITS) - 1)
+            duplicated = (code >> INLINE_COUNT_BITS) & 1
         for k in range(first_ref, first_ref + count):
-            tri = refs[k]
-            seen = False
-            for j in range(min(tested, MAILBOX_SIZE)):
-                if stack_i[MAILBOX_BASE + j] == tri:
-                    seen = True
-                    break
-            if seen:
-                continue
-            stack_i[MAILBOX_BASE + (tested & (MAILBOX_SIZE - 1))] = tri
+            if duplicated:
+                tri = refs[k]
+                seen = False
+                for j in range(min(boxed, MAILBOX_SIZE)):
+                    if stack_i[MAILBOX_BASE + j] == tri:
+                        seen = True
+                        break
+                if seen:
+                    continue
+                stack_i[MAILBOX_BASE + (boxed & (MAILBOX_SIZE - 1))] = tri
+                boxed += 1
             tested += 1
             t, u, v = hit_triangle(triangles, k, ray, t_best)
             if t < t_best:

@@ -25,8 +25,9 @@ def _safe_inverse(x):
     """1/x with |x| raised to at least 1e-35 (sign kept, -0 counts as negative).
 
     An axis-parallel ray then gets a huge finite 1/d instead of inf, so an origin lying exactly on a
-    slab plane gives 0 * 1e35 = 0 rather than 0 * inf = NaN (the kd-tree traversal relies on that; the
-    BVH box test takes the IEEE 1/d instead, see `tracer.accel._traverse`).
+    slab plane gives 0 * 1e35 = 0 rather than 0 * inf = NaN. (The BVH box test and the kd-tree walk
+    take the IEEE 1/d instead and handle its infinities themselves: `tracer.accel._traverse`,
+    `tracer.accel._kdtraverse`.)
     """
     if abs(x) >= TINY:
         return F32(1.0) / x

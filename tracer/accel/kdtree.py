@@ -29,22 +29,25 @@ Limits (both builds): depth at most 8 + 1.3 log2 N (the rule of thumb of Pharr, 
 `MAX_TRAVERSAL_DEPTH` (64, what the traversal stack allows); references at most
 `MAX_REFERENCES_PER_TRIANGLE` N (once spent, cells become leaves).
 
-Node layout. The builder makes a binary tree; it is stored as treelets of up to three levels (seven kd
-nodes) per 64-byte record (16 words, one cache line), so a ray reads one record per three levels
-instead of one per node (the kd-tree counterpart of a wide BVH node). `Tree.nodes_i` / `nodes_f` are
-(R, 16) int32 / float32 views of one block starting on a 64-byte boundary (a record is one cache line;
-measured: no change on the 1M demo, whose records in use stay in cache); record 0 holds the root.
+Node layout. The builder makes a binary tree; it is stored as treelets of up to four levels (15 kd
+nodes) per 128-byte record (32 words, two cache lines), which the traversal decides in one 16-lane
+vector step (`tracer.accel._kdtraverse`; the kd-tree counterpart of a wide BVH node). `Tree.nodes_i` /
+`nodes_f` are (R, 32) int32 / float32 views of one block starting on a 64-byte boundary; record 0 holds
+the root.
 
-    treelet record (i[0] >= 0): positions p = 0..6 in heap order (p's below child is 2p + 1, its above
-        child 2p + 2; "below" = coordinates <= split)
-      i[0]       2 bits per position, bits 2p..2p+1: 0, 1, 2 = an inner node splitting that axis,
-                 3 = a link (the node is a leaf, or lies in another record)
-      f[1 + p]   inner position: split position
-      i[1 + p]   link position: the link word (below)
-      i[8..15]   link words of the children of positions 3..6: i[8 + 2 (p - 3) + side], side 0 below
-    leaf record (i[0] = -1): i[1] = first reference, i[2] = number of references
+    treelet record (i[15] >= 0): positions p = 0..14 in heap order (p's below child is 2p + 1, its
+        above child 2p + 2; "below" = coordinates <= split); slots s = 0..15 below the fourth level, slot
+        s the end of the path whose choices are the bits of s, highest first (0 below, 1 above)
+      f[p]       p = 0..14: split position of inner position p; NaN when p is not an inner node (a
+                 leaf above it or at it)
+      i[15]      2 bits per position, bits 2p..2p+1: its split axis (0 for a NaN position)
+      i[16 + s]  slot s's link word; a leaf at position p above the fourth level covers the run of
+                 slots below p, and the run's first slot holds it (the others: -1)
+    leaf record (i[15] = -1): i[16] = first reference, i[17] = number of references, i[18] = 1 when a
+        reference's triangle is referenced elsewhere too
     link word:  >= 0: record index; -1: an empty leaf (never visited); <= -2: a leaf of fewer than 8
-                references kept in the link, -2 - (first << 3 | count), so it costs no record.
+                references kept in the link, -2 - (first << 4 | dup << 3 | count), so it costs no record
+                (dup: as i[18] of a leaf record, the leaf's references go through the mailbox).
 
 `binary_nodes` unpacks the records into the plain binary layout (depth-first, below child = node + 1;
 inner: i[0] = axis, f[1] = split, i[2] = above child; leaf: i[0] = 3, i[2] = first reference, i[3] =
@@ -77,7 +80,7 @@ COST_INTERSECT = 1.0
 EMPTY_BONUS = 0.8                       # Wald & Havran 2006: lambda(p) when one side is empty
 MAX_REFERENCES_PER_TRIANGLE = 16
 MAX_TRIANGLES = 1 << 26                 # event keys hold 30 bits of triangle id, entry codes 28 of record
-RECORD_ALIGN = 64                       # bytes: one treelet record per cache line
+RECORD_ALIGN = 64                       # bytes: a 128-byte treelet record spans two whole cache lines
 TOP_TASK_SHARE = 32                     # cells of at most N / 32 triangles are built in parallel ...
 PARALLEL_MIN_TRIANGLES = 20000          # ... for meshes of at least this many triangles
 
@@ -114,9 +117,9 @@ def _root_events(lo: np.ndarray, hi: np.ndarray, pool: ThreadPoolExecutor) -> tu
 
 
 def _aligned(records: np.ndarray) -> np.ndarray:
-    """A copy of `records` (R, 16) int32 starting on a RECORD_ALIGN-byte boundary, so that each 64-byte
-    record is one cache line (numpy's own allocations are only 16-byte aligned: a record would straddle
-    two lines, and a ray would load both)."""
+    """A copy of `records` (R, 32) int32 starting on a RECORD_ALIGN-byte boundary, so that each 128-byte
+    record is two whole cache lines (numpy's own allocations are only 16-byte aligned: a record would
+    straddle three lines)."""
     raw = np.empty(records.nbytes + RECORD_ALIGN, np.uint8)
     offset = (-raw.ctypes.data) % RECORD_ALIGN
     out = raw[offset:offset + records.nbytes].view(np.int32).reshape(records.shape)
@@ -127,8 +130,9 @@ def _aligned(records: np.ndarray) -> np.ndarray:
 def tree_from_binary(binary: np.ndarray, refs: np.ndarray, corners: np.ndarray, bounds: np.ndarray) -> Tree:
     """Pack a binary kd-tree ((M, 8) int32, the layout of `binary_nodes`) and its references (R,) into a
     Tree; corners (F, 3, 3) float32 are the triangles' vertices, copied per reference."""
-    records = _aligned(pack_records(np.ascontiguousarray(binary, np.int32)))
     refs = np.ascontiguousarray(refs, np.int32)
+    duplicated = np.bincount(refs)[refs] > 1 if len(refs) else np.zeros(0, np.bool_)
+    records = _aligned(pack_records(np.ascontiguousarray(binary, np.int32), duplicated))
     leaf_tris = np.ascontiguousarray(np.asarray(corners, np.float32).reshape(-1, 9)[refs])
     return Tree(KDTREE, records.view(np.float32), records, refs, leaf_tris, np.asarray(bounds, np.float32))
 
@@ -195,7 +199,7 @@ def _build_binary(tri_xyz, arena, counts, bounds, use_sah, leaf_size, pool):
 
 def binary_nodes(tree: Tree) -> tuple[np.ndarray, np.ndarray]:
     """The kd-tree as binary nodes: (M, 8) float32 and int32 views (layout in the module docstring)."""
-    binary = np.zeros((15 * len(tree.nodes_i) + 1, 8), np.int32)
+    binary = np.zeros((31 * len(tree.nodes_i) + 1, 8), np.int32)
     m = unpack_records(tree.nodes_i, binary)
     binary = np.ascontiguousarray(binary[:m])
     return binary.view(np.float32), binary
@@ -214,7 +218,7 @@ def cells(tree: Tree) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
 def kdtree_stats(tree: Tree, n_triangles: int) -> dict:
     """The common statistics (`stats.summarise` over the binary kd-tree: "nodes" are its inner nodes and
     leaves, empty ones included, cell areas give the SAH cost), plus the kd-tree's own: duplicated
-    references, triangles referenced, records (stored 64-byte treelets and big leaves), build costs."""
+    references, triangles referenced, records (stored 128-byte treelets and big leaves), build costs."""
     _, nodes_i, depth, boxes = cells(tree)
     is_leaf = nodes_i[:, 0] == LEAF
     areas = box_area(boxes[:, 0:3], boxes[:, 3:6])

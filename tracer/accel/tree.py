@@ -1,7 +1,7 @@
 """The flat form every acceleration structure takes, so one set of kernels can trace through any of them.
 
 A structure is a `Tree`: a few contiguous arrays linked by index. Node records are rows of W 32-bit
-words, W depending on the kind (32 for the BVH, 16 for the kd-tree, 8 for brute's single record);
+words, W depending on the kind (32 for the BVH and the kd-tree, 8 for brute's single record);
 `nodes_f` and `nodes_i` are two (N, W) views of the same memory (float32 and int32), so a node's boxes
 or split planes and its links sit in one record. What the words mean depends on `kind`:
 
@@ -13,13 +13,14 @@ or split planes and its links sit in one record. What the words mean depends on 
   load each); i[24 + k] is the child's record (inner child) or its first reference (leaf child);
   i[28 + k] is the leaf's count of references, 0 for an inner child, -1 for an unused lane (whose box
   is lo = +inf, hi = -inf, so no ray enters it).
-- kd-tree (kind 2): treelet records of 16 words (64 bytes, one cache line), root = record 0, built by
-  `tracer.accel.kdtree`. A treelet record holds up to three levels of the binary kd-tree (seven nodes
-  in heap order: i[0] packs 2 bits per node, a split axis or "link"; f[1 + p] is node p's split
-  position, i[1 + p] its link word when it is a link; i[8..15] the links to the children of the
-  third-level nodes), so a ray loads one record per three levels; a leaf record has i[0] = -1,
-  i[1] = first reference, i[2] = count. A link word is a record index, -1 for an empty leaf, or a
-  small leaf packed into the word itself. The word-by-word layout is in the docstring of
+- kd-tree (kind 2): treelet records of 32 words (128 bytes, aligned to 64 bytes: two whole cache
+  lines), root = record 0, built by `tracer.accel.kdtree`. A treelet record holds up to four levels of
+  the binary kd-tree: f[0..14] the split positions of its 15 inner positions in heap order (NaN where
+  the position is not an inner node), i[15] their axes (2 bits each), i[16..31] the link words of the 16
+  slots below the fourth level (a leaf met higher up covers a run of slots, the run's first slot
+  holding it), so a ray decides four levels per record in one vector step; a leaf record has
+  i[15] = -1, i[16] = first reference, i[17] = count. A link word is a record index, -1 for an empty
+  leaf, or a small leaf packed into the word itself. The word-by-word layout is in the docstring of
   `tracer.accel.kdtree`. No cell boxes are stored: a cell is `bounds` cut by the splits on its path.
 - brute (kind 0): one 8-word record that the kernels do not read (they test every reference in
   order): f[0..5] the scene box, i[6] = 0 the first reference, i[7] the count of references (every
@@ -34,7 +35,8 @@ from typing import NamedTuple
 import numpy as np
 
 BRUTE, BVH, KDTREE = 0, 1, 2
-STACK_SIZE = 128        # entries of the explicit traversal stack (a tree deeper than this is refused)
+STACK_SIZE = 320        # entries of the explicit traversal stack and the kd-tree's mailbox (see
+                        # tracer.accel._kdtraverse); a tree too deep for it is refused
 
 
 class Tree(NamedTuple):
