@@ -667,7 +667,12 @@ def pack_records(binary, dup_ref):
     following it, so a ray going down the below sides reads consecutive memory.
     """
     n_binary = binary.shape[0]
-    records = np.zeros((n_binary + 1, RECORD_WORDS), np.int32)
+    # At most one record per inner node (a treelet's root) and per leaf too big for a link word.
+    n_records_max = 1
+    for b in range(n_binary):
+        inline = binary[b, 3] < (1 << INLINE_COUNT_BITS) and binary[b, 2] < INLINE_FIRST_LIMIT
+        n_records_max += binary[b, 0] != LEAF or not inline
+    records = np.zeros((n_records_max, RECORD_WORDS), np.int32)
     nan_bits = np.array([np.nan], np.float32).view(np.int32)[0]
     # Work items: binary node whose link is still to be written into records[item_record, item_word].
     item_node = np.empty(n_binary + SLOTS, np.int64)
