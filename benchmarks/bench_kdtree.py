@@ -14,8 +14,8 @@ Paths measured, each as the median over rounds of Mrays/s and of the kd/BVH time
 structures measured back to back in every round, so the ratio is steadier than either figure):
   stream    `Accel.intersect` (`tracer.accel._traverse.intersect_rays`: the BVH's rays in flight, the
             kd-tree's one walk per ray, which measured faster for it);
-  per-ray   `closest_hit` one ray after another in a parallel loop, the call the integrator makes
-            (a benchmark-only kernel below, built like `intersect_rays`' generic loop);
+  per-ray   `closest_hit` one ray after another in the same parallel loop, the call the integrator
+            makes (`intersect_rays` with stream=False);
   render    one small render per structure through `tracer.render.driver.render` (camera, bounce and
             shadow rays; its own Mrays/s, always wall-clock).
 Also printed: nodes/ray and triangles/ray of each structure on each ray set (what they count: the
@@ -33,7 +33,6 @@ import numpy as np
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 DEFAULT_SCENE = os.path.normpath(os.path.join(HERE, "..", "scenes", "meadow-million.toml"))
-CHUNK = 256
 
 
 def camera_rays(scene, width: int, height: int) -> tuple[np.ndarray, np.ndarray]:
@@ -73,38 +72,18 @@ def diffuse_rays(scene, origins, directions, hits, seed: int = 7) -> tuple[np.nd
     return np.ascontiguousarray(o, np.float32), np.ascontiguousarray(d, np.float32)
 
 
-def _per_ray_kernel():
-    """The integrator's call, `closest_hit`, one ray after another; chunks pulled like intersect_rays."""
-    from tracer.accel._traverse import closest_hit, fetch_add
-    from tracer.accel._triangle import make_ray
-    from tracer.accel.tree import STACK_SIZE
-
-    @numba.njit(error_model="numpy", parallel=True)
-    def per_ray(tree, origins, directions, out_t, out_nodes, out_tris):
-        n_rays = origins.shape[0]
-        n_chunks = (n_rays + CHUNK - 1) // CHUNK
-        next_chunk = np.zeros(1, np.int64)
-        for _ in numba.prange(min(64, n_chunks)):
-            stack_i = np.empty(STACK_SIZE, dtype=np.int32)
-            stack_f = np.empty((STACK_SIZE, 2), dtype=np.float32)
-            while True:
-                chunk = fetch_add(next_chunk, 1)
-                if chunk >= n_chunks:
-                    break
-                for i in range(chunk * CHUNK, min(n_rays, (chunk + 1) * CHUNK)):
-                    ray = make_ray(origins[i, 0], origins[i, 1], origins[i, 2],
-                                   directions[i, 0], directions[i, 1], directions[i, 2])
-                    t, k, u, v, nodes, tris = closest_hit(tree, stack_i, stack_f, ray, np.float32(np.inf))
-                    out_t[i] = t
-                    out_nodes[i] = nodes
-                    out_tris[i] = tris
-
-    return per_ray
+def _trace(accel, origins, directions, stream: bool) -> None:
+    """`tracer.accel._traverse.intersect_rays` on all cores: with `stream` what `Accel.intersect` does,
+    without it one ray after another through `closest_hit`, the integrator's call."""
+    from tracer.accel._traverse import intersect_rays
+    n = len(origins)
+    out = [np.empty(n, dtype) for dtype in (np.float32, np.int32, np.float32, np.float32, np.int32, np.int32)]
+    intersect_rays(accel.tree, origins, directions, np.full(n, np.inf, np.float32), True, stream, *out)
 
 
-def _seconds(fn, clock=time.perf_counter) -> float:
+def _seconds(clock, fn, *args) -> float:
     start = clock()
-    fn()
+    fn(*args)
     return clock() - start
 
 
@@ -147,7 +126,6 @@ def main(argv=None) -> int:
     origins, directions = camera_rays(scene, args.width, args.height)
     first = accels["bvh"].intersect(origins, directions)
     ray_sets = {"camera": (origins, directions), "diffuse": diffuse_rays(scene, origins, directions, first)}
-    per_ray = None if args.no_per_ray else _per_ray_kernel()
     for set_name, (o, d) in ray_sets.items():
         n = len(o)
         entry = {"rays": n}
@@ -156,20 +134,15 @@ def main(argv=None) -> int:
         for name in accels:
             entry[f"{name}_nodes_per_ray"] = float(hits[name].nodes.mean())
             entry[f"{name}_tris_per_ray"] = float(hits[name].tris.mean())
-        paths = {"stream": lambda a, o=o, d=d: a.intersect(o, d)}
-        if per_ray is not None:
-            out_t, out_n, out_k = np.empty(n, np.float32), np.empty(n, np.int32), np.empty(n, np.int32)
-
-            def run_per_ray(a, o=o, d=d, out_t=out_t, out_n=out_n, out_k=out_k):
-                per_ray(a.tree, o, d, out_t, out_n, out_k)
+        paths = {"stream": True} if args.no_per_ray else {"stream": True, "per-ray": False}
+        for stream in paths.values():
             for accel in accels.values():
-                run_per_ray(accel)                                                 # compile
-            paths["per-ray"] = run_per_ray
-        for path, fn in paths.items():
+                _trace(accel, o, d, stream)                                    # warm-up
+        for path, stream in paths.items():
             rows = []
             for _ in range(args.rounds):
-                t_bvh = _seconds(lambda fn=fn: fn(accels["bvh"]), clock)
-                t_kd = _seconds(lambda fn=fn: fn(accels["kd"]), clock)
+                t_bvh = _seconds(clock, _trace, accels["bvh"], o, d, stream)
+                t_kd = _seconds(clock, _trace, accels["kd"], o, d, stream)
                 rows.append((n / t_bvh / 1e6, n / t_kd / 1e6, t_kd / t_bvh))
             med = np.median(np.array(rows), axis=0)
             entry[path] = {"bvh_mrays": med[0], "kd_mrays": med[1], "ratio": med[2]}

@@ -84,8 +84,8 @@ class Accel:
         v = np.zeros(n, np.float32)
         nodes = np.empty(n, np.int32)
         tris = np.empty(n, np.int32)
-        _traverse.intersect_rays(self.tree, origins, directions, t_max, closest, t, triangle, u, v, nodes,
-                                 tris)
+        _traverse.intersect_rays(self.tree, origins, directions, t_max, closest, True, t, triangle, u, v,
+                                 nodes, tris)
         return Hits(t, triangle, u, v, nodes, tris)
 
     def intersect(self, origins: np.ndarray, directions: np.ndarray, t_max=np.inf) -> Hits:

@@ -524,9 +524,13 @@ def any_hit(tree, stack_i, stack_f, ray, t_max):
 
 
 @numba.njit(cache=True, error_model="numpy", parallel=True)
-def intersect_rays(tree, origins, directions, t_max, want_closest, out_t, out_triangle, out_u, out_v,
+def intersect_rays(tree, origins, directions, t_max, want_closest, stream, out_t, out_triangle, out_u, out_v,
                    out_nodes, out_tris):
     """Trace N rays ((N, 3) float32) in parallel chunks; write the per-ray results into `out_*`.
+
+    With `stream` (what `Accel.intersect` asks), a BVH's closest hits are traced several rays in flight
+    (`_bvh_stream`); without it, or for other kinds, one ray after another through `closest_hit` /
+    `any_hit`, the integrator's calls (benchmarks/bench_kdtree.py times both paths).
 
     out_triangle gets the scene triangle id (tree.refs of the reference hit; -1 on a miss), looked up
     here rather than by the caller: a serial gather afterwards cost 6% of a 2-thread call.
@@ -536,7 +540,7 @@ def intersect_rays(tree, origins, directions, t_max, want_closest, out_t, out_tr
     n_rays = origins.shape[0]
     n_chunks = (n_rays + RAYS_PER_CHUNK - 1) // RAYS_PER_CHUNK
     next_chunk = np.zeros(1, np.int64)
-    if tree.kind == BVH and want_closest:
+    if tree.kind == BVH and want_closest and stream:
         for _ in numba.prange(min(WORKERS, n_chunks)):
             _bvh_stream(_borrow(tree.nodes_f), _borrow(tree.nodes_i), _borrow(tree.leaf_tris),
                         _borrow(tree.refs), origins, directions, t_max, next_chunk, out_t, out_triangle,
