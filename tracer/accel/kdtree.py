@@ -14,7 +14,10 @@ details are in `tracer.accel._kdbuild`. Costs, in units of one ray/triangle test
 Only the ratio K_T : K_I shapes the tree. Measured on the 1.3M-triangle displaced sphere (camera and
 diffuse rays, one thread): traversal speed was flat within the noise from 1 : 1 to 3 : 1, while the
 tree shrank (7.0M, 3.0M, 1.8M nodes; 3.8, 2.7, 2.3 references per triangle) and the build sped up with
-it; 2 : 1 keeps the fewer triangle tests of the lower ratios. `tracer.accel.stats` reports the SAH cost
+it; 2 : 1 keeps the fewer triangle tests of the lower ratios. With the four-level records, on the 1M
+demo (CPU time, camera and diffuse-bounce rays): 1 : 1, 1.5 : 1, 2.5 : 1 and 3 : 1 each traced 2-15%
+slower than 2 : 1 (the lower ratios test fewer triangles, 1.8 and 2.3 per camera ray against 3.5, but
+the tree grows to twice the records). `tracer.accel.stats` reports the SAH cost
 of every structure with its own C_T = C_I = 1, so structures compare on one scale.
 
 Median build (`build="median"`): the cell is cut at the middle of its longest axis, down to `leaf_size`
