@@ -538,6 +538,17 @@ def _collapse(node_f, node_i, root, width, out_f, out_i):
     return n_out, most
 
 
+@numba.njit(cache=True, error_model="numpy", inline="always")
+def pull_slice(next_slice, n, n_workers):
+    """The next slice [lo, hi) of range(n) for the calling thread: range(n) cut into n_workers x
+    SLICES_PER_THREAD slices, handed out in order through the shared counter next_slice[0] (`fetch_add`),
+    so whichever thread is free takes the next one; lo == hi once none is left."""
+    n_slices = n_workers * SLICES_PER_THREAD
+    step = (n + n_slices - 1) // n_slices
+    s = fetch_add(next_slice, 1)
+    return min(s * step, n), min((s + 1) * step, n)
+
+
 @numba.njit(cache=True, error_model="numpy", parallel=True)
 def _prepare(vertices, faces, prim_f, prim_i, parts):
     """Triangle records (box lo at 0:3, hi at 4:7, id at 7); parts[p] = bounds of the slices thread p made.
@@ -546,8 +557,6 @@ def _prepare(vertices, faces, prim_f, prim_i, parts):
     up the others.
     """
     n = faces.shape[0]
-    n_slices = parts.shape[0] * SLICES_PER_THREAD
-    step = (n + n_slices - 1) // n_slices
     next_slice = np.zeros(1, np.int64)
     for p in numba.prange(parts.shape[0]):
         box = np.empty(12, np.float32)
@@ -555,10 +564,9 @@ def _prepare(vertices, faces, prim_f, prim_i, parts):
             parts[p, a], parts[p, 3 + a], parts[p, 6 + a], parts[p, 9 + a] = \
                 EMPTY_LO, EMPTY_HI, EMPTY_LO, EMPTY_HI
         while True:
-            s = fetch_add(next_slice, 1)
-            if s >= n_slices:
+            lo, hi = pull_slice(next_slice, n, parts.shape[0])
+            if lo >= hi:
                 break
-            lo, hi = min(s * step, n), min((s + 1) * step, n)
             for k in range(lo, hi):
                 for a in range(3):
                     x0 = vertices[faces[k, 0], a]
@@ -583,15 +591,13 @@ def _gather_triangles(vertices, faces, prim_i, refs, leaf_tris, n_workers):
     Slices are pulled by whichever thread is free (as in `_prepare`).
     """
     n = prim_i.shape[0]
-    n_slices = n_workers * SLICES_PER_THREAD
-    step = (n + n_slices - 1) // n_slices
     next_slice = np.zeros(1, np.int64)
     for _ in numba.prange(n_workers):
         while True:
-            s = fetch_add(next_slice, 1)
-            if s >= n_slices:
+            lo, hi = pull_slice(next_slice, n, n_workers)
+            if lo >= hi:
                 break
-            for k in range(min(s * step, n), min((s + 1) * step, n)):
+            for k in range(lo, hi):
                 tri = prim_i[k, 7]
                 refs[k] = tri
                 for c in range(3):

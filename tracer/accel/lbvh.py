@@ -45,8 +45,8 @@ from tracer.accel._traverse import WORKERS, fetch_add
 from tracer.accel.bvh import (
     EMPTY_HI,
     EMPTY_LO,
-    SLICES_PER_THREAD,
     finish_tree,
+    pull_slice,
     triangle_records,
 )
 from tracer.accel.tree import Tree
@@ -88,15 +88,13 @@ def _morton_keys(prim_f, origin2, scale, axis_bits, index_bits, keys, n_workers)
     """
     n = prim_f.shape[0]
     top = (np.int64(1) << axis_bits) - 1
-    n_slices = n_workers * SLICES_PER_THREAD
-    step = (n + n_slices - 1) // n_slices
     next_slice = np.zeros(1, np.int64)
     for _ in numba.prange(n_workers):
         while True:
-            s = fetch_add(next_slice, 1)
-            if s >= n_slices:
+            lo, hi = pull_slice(next_slice, n, n_workers)
+            if lo >= hi:
                 break
-            for k in range(min(s * step, n), min((s + 1) * step, n)):
+            for k in range(lo, hi):
                 x = np.int64((np.float64(prim_f[k, 0] + prim_f[k, 4]) - origin2[0]) * scale)
                 y = np.int64((np.float64(prim_f[k, 1] + prim_f[k, 5]) - origin2[1]) * scale)
                 z = np.int64((np.float64(prim_f[k, 2] + prim_f[k, 6]) - origin2[2]) * scale)
