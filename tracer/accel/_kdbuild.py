@@ -651,6 +651,12 @@ def _any_duplicated(dup_ref, first, count):
 
 
 @numba.njit(cache=True, error_model="numpy")
+def _fits_link(first, count):
+    """Whether a leaf of `count` references from `first` fits in its parent's link word."""
+    return count < (1 << INLINE_COUNT_BITS) and first < INLINE_FIRST_LIMIT
+
+
+@numba.njit(cache=True, error_model="numpy")
 def _leaf_link(first, count, dup):
     """Link word of a leaf kept in its parent: -1 if empty, else -2 - (first << 4 | dup << 3 | count)."""
     if count == 0:
@@ -670,8 +676,7 @@ def pack_records(binary, dup_ref):
     # At most one record per inner node (a treelet's root) and per leaf too big for a link word.
     n_records_max = 1
     for b in range(n_binary):
-        inline = binary[b, 3] < (1 << INLINE_COUNT_BITS) and binary[b, 2] < INLINE_FIRST_LIMIT
-        n_records_max += binary[b, 0] != LEAF or not inline
+        n_records_max += binary[b, 0] != LEAF or not _fits_link(binary[b, 2], binary[b, 3])
     records = np.zeros((n_records_max, RECORD_WORDS), np.int32)
     nan_bits = np.array([np.nan], np.float32).view(np.int32)[0]
     # Work items: binary node whose link is still to be written into records[item_record, item_word].
@@ -722,8 +727,7 @@ def pack_records(binary, dup_ref):
                     continue
                 if s & ((1 << (TREELET_LEVELS - 1 - level)) - 1) == 0:
                     first, count = binary[node, 2], binary[node, 3]
-                    inline = count < (1 << INLINE_COUNT_BITS) and first < INLINE_FIRST_LIMIT
-                    if binary[node, 0] == LEAF and inline:
+                    if binary[node, 0] == LEAF and _fits_link(first, count):
                         link = _leaf_link(first, count, _any_duplicated(dup_ref, first, count))
                     else:
                         item_node[top], item_record[top], item_word[top] = node, r, SLOTS + s

@@ -47,7 +47,7 @@ from llvmlite import ir
 from numba.core import cgutils, types
 from numba.extending import intrinsic
 
-from tracer.accel._kdtraverse import kd_traverse
+from tracer.accel._kdtraverse import bit_count, emit_prefetch, kd_traverse
 from tracer.accel._triangle import INF32, hit_triangle, make_ray
 from tracer.accel.tree import BVH, KDTREE, STACK_SIZE
 
@@ -115,14 +115,12 @@ def _fetch(typingctx, nodes_f, leaf_tris, code, count):
 
     def codegen(context, builder, signature, args):
         nodes, tris, code, count = args
-        i8p, i32, zero = ir.IntType(8).as_pointer(), ir.IntType(32), ir.Constant(code.type, 0)
-        fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
-        prefetch = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
+        zero = ir.Constant(code.type, 0)
 
         def hint(aryty, ary_value, row, col):
             ary = context.make_array(aryty)(context, builder, ary_value)
-            ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [row, ir.Constant(code.type, col)])
-            builder.call(prefetch, [builder.bitcast(ptr, i8p), i32(0), i32(3), i32(1)])   # read, keep, data
+            emit_prefetch(builder, cgutils.get_item_pointer(context, builder, aryty, ary,
+                                                            [row, ir.Constant(code.type, col)]))
 
         with builder.if_else(builder.icmp_signed("==", count, zero)) as (is_record, is_leaf):
             with is_record:
@@ -252,17 +250,6 @@ def _order(t0, t1, t2, t3):
 
 
 @numba.njit(cache=True, error_model="numpy", inline="always")
-def _only_lane(mask):
-    """The lane of a one-bit mask (1, 2, 4, 8 -> 0, 1, 2, 3)."""
-    return (mask >> 1) - (mask >> 3)
-
-
-@numba.njit(cache=True, error_model="numpy", inline="always")
-def _hits(mask):
-    return (mask & 1) + ((mask >> 1) & 1) + ((mask >> 2) & 1) + ((mask >> 3) & 1)
-
-
-@numba.njit(cache=True, error_model="numpy", inline="always")
 def _leaf(leaf_tris, first, count, ray, t_best, best_k, best_u, best_v):
     """Test the leaf's triangles; the nearest hit so far, updated without branches."""
     for k in range(first, first + count):
@@ -290,11 +277,11 @@ def _bvh_closest_hit(nodes_f, nodes_i, leaf_tris, stack_i, stack_f, ray, t_max):
             if mask != 0:
                 n = U64(code)
                 if mask & (mask - 1) == 0:      # one child entered: nothing to sort
-                    lane = U64(_only_lane(mask))
+                    lane = U64(bit_count(mask, True))
                     code, count = nodes_i[n, U64(24) + lane], nodes_i[n, U64(28) + lane]
                 else:
                     la, lb, lc, ld, tb, tc, td = _order(t0, t1, t2, t3)
-                    entered = _hits(mask)
+                    entered = bit_count(mask, False)
                     # Push the entered children but the nearest, farthest first; writes past the
                     # entered ones are overwritten later (no branch on how many there are).
                     for lane, t, more in ((ld, td, entered >= 4), (lc, tc, entered >= 3), (lb, tb, True)):
@@ -416,11 +403,11 @@ def _bvh_stream(nodes_f, nodes_i, leaf_tris, refs, origins, directions, t_max, n
                     descended = True
                     n = U64(code)
                     if mask & (mask - 1) == 0:
-                        lane = U64(_only_lane(mask))
+                        lane = U64(bit_count(mask, True))
                         code, count = nodes_i[n, U64(24) + lane], nodes_i[n, U64(28) + lane]
                     else:
                         la, lb, lc, ld, tb, tc, td = _order(t0, t1, t2, t3)
-                        entered = _hits(mask)
+                        entered = bit_count(mask, False)
                         for lane, t, more in ((ld, td, entered >= 4), (lc, tc, entered >= 3), (lb, tb, True)):
                             slot = U64(top)
                             stack_code[j, slot] = nodes_i[n, U64(24 + lane)]

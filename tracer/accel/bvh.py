@@ -42,7 +42,7 @@ import numba
 import numpy as np
 
 from tracer.accel._traverse import WORKERS, fetch_add
-from tracer.accel.tree import BVH, STACK_SIZE, Tree, scene_bounds
+from tracer.accel.tree import BVH, STACK_SIZE, Tree, node_records, scene_bounds
 
 N_BINS = 32
 BIN_SCALE = N_BINS * (1.0 - 1e-6)   # Wald 2007 eq. 2: the largest centroid falls into bin K - 1
@@ -605,14 +605,6 @@ def _gather_triangles(vertices, faces, prim_i, refs, leaf_tris, n_workers):
                         leaf_tris[k, 3 * c + a] = vertices[faces[tri, c], a]
 
 
-def _aligned_records(count: int) -> tuple[np.ndarray, np.ndarray]:
-    """(count, RECORD_WORDS) float32 and int32 views of one zeroed buffer starting on RECORD_ALIGN bytes."""
-    raw = np.zeros(count * RECORD_WORDS * 4 + RECORD_ALIGN, np.uint8)
-    offset = (-raw.ctypes.data) % RECORD_ALIGN
-    words = raw[offset:offset + count * RECORD_WORDS * 4].view(np.int32).reshape(count, RECORD_WORDS)
-    return words.view(np.float32), words
-
-
 def triangle_records(vertices: np.ndarray, faces: np.ndarray):
     """The input every BVH build starts from: (vertices float32, faces int32, prim_f, prim_i, parts) with
     prim_f / prim_i the (F, 8) float32 / int32 views of the 32-byte triangle records and parts the
@@ -635,7 +627,7 @@ def finish_tree(node_f, node_i, root: int, n_inner: int, vertices, faces, prim_i
         n_records, need = _collapse(node_f, node_i, root, 2, wide_i.view(np.float32), wide_i)
         if need > STACK_SIZE:
             raise RuntimeError(f"BVH deeper than the traversal stack ({need} > {STACK_SIZE} entries)")
-    out_f, out_i = _aligned_records(n_records)
+    out_f, out_i = node_records(n_records, RECORD_WORDS, RECORD_ALIGN)
     out_i[:] = wide_i[:n_records]
     n_tris = len(faces)
     refs = np.empty(n_tris, np.int32)

@@ -67,6 +67,7 @@ from tracer.accel._kdbuild import (
     END,
     LEAF,
     PLANAR,
+    RECORD_WORDS,
     START,
     build_kdtree_kernel,
     cell_boxes,
@@ -76,7 +77,7 @@ from tracer.accel._kdbuild import (
 )
 from tracer.accel._kdtraverse import MAX_TRAVERSAL_DEPTH
 from tracer.accel.stats import box_area, summarise, tree_memory
-from tracer.accel.tree import KDTREE, Tree
+from tracer.accel.tree import KDTREE, Tree, node_records
 
 COST_TRAVERSE = 2.0
 COST_INTERSECT = 1.0
@@ -119,25 +120,16 @@ def _root_events(lo: np.ndarray, hi: np.ndarray, pool: ThreadPoolExecutor) -> tu
     return arena, counts
 
 
-def _aligned(records: np.ndarray) -> np.ndarray:
-    """A copy of `records` (R, 32) int32 starting on a RECORD_ALIGN-byte boundary, so that each 128-byte
-    record is two whole cache lines (numpy's own allocations are only 16-byte aligned: a record would
-    straddle three lines)."""
-    raw = np.empty(records.nbytes + RECORD_ALIGN, np.uint8)
-    offset = (-raw.ctypes.data) % RECORD_ALIGN
-    out = raw[offset:offset + records.nbytes].view(np.int32).reshape(records.shape)
-    out[:] = records
-    return out
-
-
 def tree_from_binary(binary: np.ndarray, refs: np.ndarray, corners: np.ndarray, bounds: np.ndarray) -> Tree:
     """Pack a binary kd-tree ((M, 8) int32, the layout of `binary_nodes`) and its references (R,) into a
     Tree; corners (F, 3, 3) float32 are the triangles' vertices, copied per reference."""
     refs = np.ascontiguousarray(refs, np.int32)
     duplicated = np.bincount(refs)[refs] > 1 if len(refs) else np.zeros(0, np.bool_)
-    records = _aligned(pack_records(np.ascontiguousarray(binary, np.int32), duplicated))
+    packed = pack_records(np.ascontiguousarray(binary, np.int32), duplicated)
+    records_f, records = node_records(len(packed), RECORD_WORDS, RECORD_ALIGN)
+    records[:] = packed
     leaf_tris = np.ascontiguousarray(np.asarray(corners, np.float32).reshape(-1, 9)[refs])
-    return Tree(KDTREE, records.view(np.float32), records, refs, leaf_tris, np.asarray(bounds, np.float32))
+    return Tree(KDTREE, records_f, records, refs, leaf_tris, np.asarray(bounds, np.float32))
 
 
 def build_kdtree(vertices: np.ndarray, faces: np.ndarray, build: str = "sah", leaf_size: int = 4) -> Tree:

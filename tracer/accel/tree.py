@@ -48,10 +48,15 @@ class Tree(NamedTuple):
     bounds: np.ndarray          # (6,) float32 lo, hi of the whole scene
 
 
-def node_records(count: int) -> tuple[np.ndarray, np.ndarray]:
-    """Allocate `count` zeroed node records and return their (float32, int32) views."""
-    raw = np.zeros((max(count, 1), 8), dtype=np.int32)
-    return raw.view(np.float32), raw
+def node_records(count: int, words: int = 8, align: int = 64) -> tuple[np.ndarray, np.ndarray]:
+    """`count` (at least 1) zeroed node records of `words` 32-bit words in one block starting on an
+    `align`-byte boundary, as (float32, int32) views. numpy's own allocations are only 16-byte aligned,
+    so a record would straddle one more cache line than it fills."""
+    rows = max(count, 1)
+    raw = np.zeros(rows * words * 4 + align, np.uint8)
+    offset = (-raw.ctypes.data) % align
+    records = raw[offset:offset + rows * words * 4].view(np.int32).reshape(rows, words)
+    return records.view(np.float32), records
 
 
 def leaf_triangles(vertices: np.ndarray, faces: np.ndarray, refs: np.ndarray) -> np.ndarray:
